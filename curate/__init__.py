@@ -1,0 +1,2 @@
+"""curate: caption-image corpus curation for text-to-image training."""
+__version__ = "0.1.0"

@@ -1,0 +1,187 @@
+"""Thin CLI: one command per user task; each parses, calls curate.api, maps errors to exit codes.
+
+Exit codes: 0 done; 1 finished but a check failed (e.g. leaks found);
+2 bad usage, bad config or unreadable input; 3 a stage failed on a whole shard.
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from typing import Any
+
+from . import __version__
+from .errors import CurateError
+
+
+def _cmd_run(a: argparse.Namespace) -> int:
+    from . import api
+    from .progress import BarProgress, NullProgress
+
+    progress = BarProgress() if (not a.quiet and sys.stderr.isatty()) else NullProgress()
+    res = api.run(a.config, out=a.out, input=a.input, sets=a.set, engine=a.engine, progress=progress)
+    summary = json.loads((__import__("pathlib").Path(a.out) / "summary.json").read_text())
+    if a.json:
+        print(json.dumps({"out": res.out_dir, "summary": summary, "ran": res.ran, "reused": res.reused}))
+        return 0
+    print(f"curate {__version__}: {res.samples} samples in {res.shards} shard(s)")
+    for stage in res.seconds:
+        if stage == "list":
+            continue
+        ran, reused = res.ran.get(stage, 0), res.reused.get(stage, 0)
+        print(f"  {stage:<16} {res.seconds[stage]:7.2f}s  computed {ran}, reused {reused}")
+    print(f"kept {summary['kept']} of {summary['samples']} ({100 * summary['kept_fraction']:.1f}%)")
+    if summary["by_reason"]:
+        print("drops by reason (a sample may have several):")
+        for code, n in summary["by_reason"].items():
+            print(f"  {code:<22} {n}")
+    if summary["by_flag"]:
+        print("flags (for human review):")
+        for code, n in summary["by_flag"].items():
+            print(f"  {code:<22} {n}")
+    if summary.get("by_split"):
+        print("split: " + ", ".join(f"{k} {v}" for k, v in sorted(summary["by_split"].items())))
+    out = res.out_dir
+    print(f"shards:   {out}/shards/\nledger:   {out}/ledger.parquet\nsummary:  {out}/summary.json\n"
+          f"report:   {out}/report.html")
+    if res.cleared_stale_lock:
+        print("note: cleared a stale lock left by a killed run")
+    return 0
+
+
+def _cmd_explain(a: argparse.Namespace) -> int:
+    from . import api
+
+    info = api.explain(a.out, a.sample)
+    if a.json:
+        print(json.dumps(info, default=str))
+        return 0
+    verdict = "KEPT" if info["kept"] else "DROPPED"
+    print(f"sample  {info['sample_id']}  {info['source']}")
+    print(f"caption {_short(info['caption'], 100)!s}")
+    print(f"size    {info['width']}x{info['height']}  format {info['format']}  bytes {info['file_bytes']}")
+    print(f"verdict {verdict}" + (f"  reasons: {', '.join(info['reasons'])}" if info["reasons"] else "")
+          + (f"  flags: {', '.join(info['flags'])}" if info["flags"] else ""))
+    if info.get("split"):
+        print(f"split   {info['split']}")
+    print()
+    print(f"{'stage':<16}{'check':<34}{'value':<26}{'threshold':<22}verdict")
+    for c in info["checks"]:
+        v = "fail" if c["failed"] else "pass"
+        if c["failed"]:
+            v += f" -> {c['action']}"
+        print(f"{c['stage']:<16}{_short(c['code'], 33):<34}{_short(c['value'], 25):<26}"
+              f"{_short(c['threshold'], 21):<22}{v}")
+    if info["group"]:
+        print(f"\nnear-duplicate group {info['group_id']} ({len(info['group'])} members):")
+        for m in info["group"]:
+            mark = "kept   " if m["kept"] else "dropped"
+            d = "" if m["dup_of"] is None else f" dup of {m['dup_of']} by {m['dup_signal']} at {m['dup_distance']}"
+            print(f"  {mark} {m['sample_id']} {m['source']} {m['width']}x{m['height']}{d}")
+    return 0
+
+
+def _short(v: Any, n: int) -> str:
+    s = "" if v is None else str(v)
+    return s if len(s) <= n else s[: n - 1] + "…"
+
+
+def _cmd_status(a: argparse.Namespace) -> int:
+    from . import api
+
+    st = api.status(a.out)
+    if a.json:
+        print(json.dumps(st))
+        return 0
+    print(f"{a.out}: {'running' if st['running'] else ('finished' if st.get('finished') else 'not finished')}")
+    for name, s in st.get("stages", {}).items():
+        print(f"  {name:<16} {s['kind']:<7} computed {s['ran']}, reused {s['reused']}, {s['seconds']}s")
+    for name, ok in st["outputs"].items():
+        print(f"  {name:<16} {'present' if ok else 'missing'}")
+    return 0
+
+
+def _cmd_init(a: argparse.Namespace) -> int:
+    from . import api
+
+    p = api.init(a.path, preset=a.preset, force=a.force)
+    print(f"wrote {p}")
+    return 0
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(
+        prog="curate",
+        description="Turn a caption-image corpus into training-ready Parquet shards for text-to-image "
+                    "diffusion models, with a ledger that explains every kept and dropped sample.",
+    )
+    p.add_argument("--version", action="version", version=f"curate {__version__}")
+    sub = p.add_subparsers(dest="command", metavar="COMMAND")
+
+    r = sub.add_parser("run", help="run the whole pipeline on a corpus",
+                       description="Run every enabled stage, then write shards, ledger, summary and report to --out. "
+                                   "Re-running with the same --out reuses every output whose inputs and config "
+                                   "did not change.")
+    r.add_argument("config", nargs="?", help="pipeline config (TOML); omitted: built-in defaults")
+    r.add_argument("--input", help="input root: folder, manifest (.csv/.jsonl/.parquet) or tar shard(s); "
+                                   "overrides [input] path")
+    r.add_argument("--out", required=True, help="output directory")
+    r.add_argument("--set", action="append", default=[], metavar="SECTION.KEY=VALUE",
+                   help="override one config entry (repeatable), e.g. --set inspect.min_short_side=512")
+    r.add_argument("--engine", choices=["local", "ray"], help="where per-shard stages run (default: config)")
+    r.add_argument("--json", action="store_true", help="print the summary as one JSON line")
+    r.add_argument("--quiet", action="store_true", help="no progress bars")
+    r.set_defaults(func=_cmd_run)
+
+    e = sub.add_parser("explain", help="show why one sample was kept or dropped",
+                       description="Print every check of one sample: its value, threshold and verdict, and its "
+                                   "near-duplicate group.")
+    e.add_argument("out", help="output directory of a finished run")
+    e.add_argument("sample", help="sample_id, or source path (relative to the input root)")
+    e.add_argument("--json", action="store_true", help="print JSON")
+    e.set_defaults(func=_cmd_explain)
+
+    s = sub.add_parser("status", help="show each stage's state in an output directory",
+                       description="Show what the last run in an output directory computed and reused, and "
+                                   "whether a run is in progress.")
+    s.add_argument("out", help="output directory")
+    s.add_argument("--json", action="store_true", help="print JSON")
+    s.set_defaults(func=_cmd_status)
+
+    i = sub.add_parser("init", help="write a commented starter config",
+                       description="Write a pipeline config with every section and key, its default and the "
+                                   "source of that default.")
+    i.add_argument("path", help="where to write the config (e.g. curate.toml)")
+    i.add_argument("--preset", default="default", help="default (web corpus) or finetune (small 512 px set)")
+    i.add_argument("--force", action="store_true", help="overwrite an existing file")
+    i.set_defaults(func=_cmd_init)
+    _add_leakcheck(sub)
+    return p
+
+
+def _add_leakcheck(sub: Any) -> None:
+    try:
+        from .leakcheck_cli import add_parser
+    except ImportError:
+        return
+    add_parser(sub)
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    a = parser.parse_args(argv)
+    if not getattr(a, "func", None):
+        parser.print_help()
+        return 2
+    try:
+        return a.func(a)
+    except CurateError as e:
+        print(f"curate: error: {e}", file=sys.stderr)
+        return e.exit_code
+    except KeyboardInterrupt:
+        print("curate: interrupted; re-run the same command to resume", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":
+    sys.exit(main())

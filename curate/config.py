@@ -1,0 +1,298 @@
+"""TOML pipeline config -> validated, typed objects.
+
+One order of precedence everywhere: built-in defaults < pipeline file <
+`--set section.key=value`. Each stage's section is a dataclass declared in
+the stage's own module; this module only knows how to fill and check them.
+"""
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+import json
+import tomllib
+import types
+import typing
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Literal
+
+from .errors import ConfigError
+
+
+@dataclass
+class InputConfig:
+    # Input root: a folder, a manifest file (.csv/.jsonl/.parquet), a .tar file or a folder of .tar shards.
+    path: str = ""
+    # auto | folder | manifest | tar. auto: a file by its extension; a folder holding only .tar files is tar.
+    format: Literal["auto", "folder", "manifest", "tar"] = "auto"
+    # Manifest column with the image path (relative to the manifest's folder, or absolute).
+    image_column: str = "image"
+    # Manifest column with the caption text.
+    caption_column: str = "caption"
+    # Optional manifest column with a stable id; empty: the id is derived from the source path.
+    id_column: str = ""
+    # Samples per work shard; the unit of parallel work and of resume (common practice: 1k-10k).
+    shard_size: int = 500
+
+
+@dataclass
+class RunConfig:
+    # Worker processes for per-shard stages; 0 = one per CPU core.
+    workers: int = 0
+    # local | ray (ray needs the `ray` extra installed).
+    engine: Literal["local", "ray"] = "local"
+    # Ray cluster address ("auto", "ray://host:10001"); empty starts a private local Ray.
+    # On a cluster, --out must be on storage every node can read and write.
+    ray_address: str = ""
+    # CPUs Ray reserves per shard task; fractions let reads and tasks share small machines.
+    ray_task_cpus: float = 1.0
+
+
+@dataclass
+class DecideConfig:
+    # Per reason code, override its default action: "drop", "flag" or "keep" (ignore).
+    actions: dict[str, str] = field(default_factory=dict)
+
+
+BUILTIN_SECTIONS: dict[str, type] = {"input": InputConfig, "run": RunConfig, "decide": DecideConfig}
+
+
+class PipelineConfig:
+    """The resolved config: one typed object per section, reachable as attributes."""
+
+    def __init__(self, sections: dict[str, Any], origin: str | None = None):
+        self._sections = sections
+        self.origin = origin
+
+    def __getattr__(self, name: str) -> Any:
+        try:
+            return self.__dict__["_sections"][name]
+        except KeyError:
+            raise AttributeError(name) from None
+
+    def section(self, name: str) -> Any:
+        return self._sections[name]
+
+    def names(self) -> list[str]:
+        return list(self._sections)
+
+    def to_dict(self) -> dict[str, dict]:
+        return {k: dataclasses.asdict(v) for k, v in self._sections.items()}
+
+    def fingerprint(self, *names: str) -> str:
+        """A stable hash of the named sections (all when none are named)."""
+        d = self.to_dict()
+        sel = {k: d[k] for k in (names or sorted(d))}
+        return hashlib.sha256(json.dumps(sel, sort_keys=True, default=str).encode()).hexdigest()
+
+    def to_toml(self) -> str:
+        return dump_toml(self.to_dict())
+
+
+def load_config(
+    path: str | Path | None,
+    sets: list[str] | tuple[str, ...] = (),
+    sections: dict[str, type] | None = None,
+) -> PipelineConfig:
+    """Defaults < file < sets. `sections` maps section name -> dataclass (stages add theirs)."""
+    all_sections = dict(BUILTIN_SECTIONS)
+    all_sections.update(sections or {})
+    data: dict[str, Any] = {}
+    fname = str(path) if path else None
+    if path is not None:
+        p = Path(path)
+        try:
+            data = tomllib.loads(p.read_text(encoding="utf-8"))
+        except FileNotFoundError:
+            raise ConfigError("config file not found", file=fname) from None
+        except (tomllib.TOMLDecodeError, UnicodeDecodeError) as e:
+            raise ConfigError(f"not valid TOML ({e})", file=fname) from e
+    for s in sets:
+        _apply_set(data, s)
+    built: dict[str, Any] = {}
+    for name, cls in all_sections.items():
+        raw = data.get(name, {})
+        if not isinstance(raw, dict):
+            raise ConfigError(f"expected a table [{name}], got {type(raw).__name__}", file=fname, key=name)
+        built[name] = _build(cls, raw, name, fname)
+    unknown = sorted(set(data) - set(all_sections))
+    if unknown:
+        raise ConfigError(
+            f"unknown section; expected one of: {', '.join(sorted(all_sections))}", file=fname, key=unknown[0]
+        )
+    cfg = PipelineConfig(built, origin=fname)
+    if fname and cfg.input.path and not Path(cfg.input.path).is_absolute():
+        # Relative input paths in a file are relative to that file.
+        cfg.input.path = str((Path(fname).parent / cfg.input.path).resolve())
+    return cfg
+
+
+def _apply_set(data: dict, item: str) -> None:
+    if "=" not in item or "." not in item.split("=", 1)[0]:
+        raise ConfigError(f"--set expects section.key=value, got {item!r}", key=item)
+    key, raw = item.split("=", 1)
+    section, name = key.strip().split(".", 1)
+    try:
+        value = tomllib.loads(f"v = {raw}")["v"]
+    except tomllib.TOMLDecodeError:
+        value = raw  # a bare word is a string
+    data.setdefault(section, {})
+    if not isinstance(data[section], dict):
+        raise ConfigError("not a table", key=section)
+    node = data[section]
+    parts = name.split(".")
+    for part in parts[:-1]:
+        node = node.setdefault(part, {})
+    node[parts[-1]] = value
+
+
+def _build(cls: type, raw: dict, section: str, fname: str | None) -> Any:
+    hints = typing.get_type_hints(cls)
+    names = {f.name for f in dataclasses.fields(cls)}
+    for k in raw:
+        if k not in names:
+            raise ConfigError(
+                f"unknown key; [{section}] accepts: {', '.join(sorted(names))}", file=fname, key=f"{section}.{k}"
+            )
+    kwargs = {}
+    for k, v in raw.items():
+        kwargs[k] = _coerce(v, hints[k], fname, f"{section}.{k}")
+    obj = cls(**kwargs)
+    validate = getattr(obj, "validate", None)
+    if validate is not None:
+        try:
+            validate()
+        except ValueError as e:
+            raise ConfigError(str(e), file=fname, key=section) from e
+    return obj
+
+
+def _coerce(v: Any, tp: Any, fname: str | None, key: str) -> Any:
+    origin = typing.get_origin(tp)
+    args = typing.get_args(tp)
+
+    def bad(expected: str) -> ConfigError:
+        return ConfigError(f"expected {expected}, got {v!r}", file=fname, key=key)
+
+    if tp is Any:
+        return v
+    if origin in (typing.Union, types.UnionType):
+        if v is None and type(None) in args:
+            return None
+        errs = []
+        for a in args:
+            if a is type(None):
+                continue
+            try:
+                return _coerce(v, a, fname, key)
+            except ConfigError as e:
+                errs.append(e)
+        raise bad(" or ".join(_tname(a) for a in args))
+    if origin is Literal:
+        if v not in args:
+            raise bad("one of " + ", ".join(repr(a) for a in args))
+        return v
+    if tp is bool:
+        if not isinstance(v, bool):
+            raise bad("true or false")
+        return v
+    if tp is int:
+        if isinstance(v, bool) or not isinstance(v, int):
+            raise bad("an integer")
+        return v
+    if tp is float:
+        if isinstance(v, bool) or not isinstance(v, (int, float)):
+            raise bad("a number")
+        return float(v)
+    if tp is str:
+        if not isinstance(v, str):
+            raise bad("a string")
+        return v
+    if origin in (list, tuple):
+        if not isinstance(v, list):
+            raise bad("a list")
+        inner = args[0] if args else Any
+        return [_coerce(x, inner, fname, f"{key}[{i}]") for i, x in enumerate(v)]
+    if origin is dict:
+        if not isinstance(v, dict):
+            raise bad("a table")
+        inner = args[1] if len(args) > 1 else Any
+        return {str(k): _coerce(x, inner, fname, f"{key}.{k}") for k, x in v.items()}
+    return v
+
+
+def _tname(tp: Any) -> str:
+    return getattr(tp, "__name__", str(tp))
+
+
+def dump_toml(d: dict[str, dict]) -> str:
+    """Write a two-level config dict as TOML (enough for our sections)."""
+    lines: list[str] = []
+    for section, values in d.items():
+        lines.append(f"[{section}]")
+        for k, v in values.items():
+            if v is None:
+                lines.append(f"# {k} = (unset)")
+                continue
+            lines.append(f"{k} = {_toml_value(v)}")
+        lines.append("")
+    return "\n".join(lines)
+
+
+def _toml_value(v: Any) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, (int, float)):
+        return repr(v)
+    if isinstance(v, str):
+        return json.dumps(v, ensure_ascii=False)
+    if isinstance(v, (list, tuple)):
+        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
+    if isinstance(v, dict):
+        return "{" + ", ".join(f"{json.dumps(str(k))} = {_toml_value(x)}" for k, x in v.items()) + "}"
+    return json.dumps(str(v))
+
+
+def field_comments(cls: type) -> dict[str, str]:
+    """The `# ...` comment lines written just above each field in a config dataclass's source."""
+    import inspect as _inspect
+
+    try:
+        src = _inspect.getsource(cls).splitlines()
+    except (OSError, TypeError):
+        return {}
+    out: dict[str, str] = {}
+    pending: list[str] = []
+    names = {f.name for f in dataclasses.fields(cls)}
+    for line in src:
+        s = line.strip()
+        if s.startswith("#"):
+            pending.append(s.lstrip("#").strip())
+            continue
+        name = s.split(":", 1)[0].strip() if ":" in s else ""
+        if name in names and name not in out:
+            out[name] = " ".join(pending)
+        pending = []
+    return out
+
+
+def commented_template(sections: dict[str, type], values: dict[str, dict] | None = None,
+                       header: str = "") -> str:
+    """A starter config: every section and key with its default (or given value) and its comment."""
+    values = values or {}
+    lines = [header] if header else []
+    for name, cls in sections.items():
+        defaults = dataclasses.asdict(cls())
+        given = values.get(name, {})
+        comments = field_comments(cls)
+        lines.append(f"[{name}]")
+        for key, dv in defaults.items():
+            v = given.get(key, dv)
+            if comments.get(key):
+                lines.append(f"# {comments[key]}")
+            if v is None:
+                lines.append(f"# {key} =")
+            else:
+                lines.append(f"{key} = {_toml_value(v)}")
+        lines.append("")
+    return "\n".join(lines)

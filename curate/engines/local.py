@@ -1,0 +1,55 @@
+"""Local engine: per-shard tasks in worker processes (forkserver, so a parent that has
+loaded torch or other threaded libraries never forks them)."""
+from __future__ import annotations
+
+import multiprocessing as mp
+import os
+from concurrent.futures import FIRST_EXCEPTION, ProcessPoolExecutor, wait
+from typing import Any, Iterator
+
+
+def _run(task: Any) -> int:
+    from ..runner import execute
+
+    return execute(task)
+
+
+class LocalEngine:
+    name = "local"
+
+    def __init__(self, cfg: Any):
+        w = cfg.run.workers
+        self.workers = w if w > 0 else (os.cpu_count() or 1)
+        self._pool: ProcessPoolExecutor | None = None
+
+    def _get_pool(self) -> ProcessPoolExecutor:
+        if self._pool is None:
+            ctx = mp.get_context("forkserver")
+            ctx.set_forkserver_preload(["curate.stages", "curate.runner"])
+            self._pool = ProcessPoolExecutor(max_workers=self.workers, mp_context=ctx)
+        return self._pool
+
+    def map_tasks(self, tasks: list[Any], sizes: list[int]) -> Iterator[int]:
+        """Run tasks; yield each finished task's size (for progress). Raises the first failure."""
+        if self.workers <= 1:
+            for t, n in zip(tasks, sizes):
+                _run(t)
+                yield n
+            return
+        pool = self._get_pool()
+        futs = {pool.submit(_run, t): n for t, n in zip(tasks, sizes)}
+        pending = set(futs)
+        while pending:
+            done, pending = wait(pending, return_when=FIRST_EXCEPTION)
+            for f in done:
+                exc = f.exception()
+                if exc is not None:
+                    for p in pending:
+                        p.cancel()
+                    raise exc
+                yield futs[f]
+
+    def close(self) -> None:
+        if self._pool is not None:
+            self._pool.shutdown(wait=True, cancel_futures=True)
+            self._pool = None

@@ -1,0 +1,226 @@
+"""caption: normalise caption text and check it.
+
+Normalisation: strip a BOM, decode UTF-8 (invalid bytes: decoded as cp1252 /
+Latin-1 and repaired with ftfy, never a crash), repair mojibake with ftfy,
+Unicode NFC, control characters removed, runs of whitespace collapsed.
+Checks: empty, too short/long in characters and in CLIP tokens, file-name-like
+or boilerplate text. The repeated-caption check needs the whole corpus and
+runs in the global `caption_repeats` stage below.
+"""
+from __future__ import annotations
+
+import re
+import unicodedata
+from dataclasses import dataclass, field
+
+import pyarrow as pa
+
+from .base import CHECKS_TYPE, CheckSpec, Stage, StageContext, check, checks_column, register
+
+NAME = "caption"
+VERSION = "1"
+
+# Common placeholder captions of scraped and exported archives (common practice).
+DEFAULT_BOILERPLATE = [
+    "image", "img", "picture", "pic", "photo", "photograph", "untitled", "untitled image", "no title",
+    "no description", "no caption", "description", "caption", "placeholder", "thumbnail", "default",
+    "null", "none", "n/a", "na", "undefined", "click to enlarge", "image not found", "stock photo",
+    "stock image", "product image", "main image", "featured image", "alt", "alt text", "logo", "banner",
+    "screenshot", "untitled-1", "new image", "download", "test",
+]
+
+
+@dataclass
+class CaptionConfig:
+    enabled: bool = True
+    # Minimum characters after normalisation (LAION-400M, Schuhmann et al. 2021: alt-text under 5 chars dropped).
+    min_chars: int = 5
+    # Maximum characters (common practice: longer text is usually scraped page text, not a caption).
+    max_chars: int = 1000
+    # Minimum CLIP BPE tokens, start/end tokens excluded (common practice: one- or two-word captions say little).
+    min_tokens: int = 3
+    # Maximum CLIP tokens incl. start/end; CLIP's text context is 77 tokens (Radford et al. 2021), longer text is cut.
+    max_tokens: int = 77
+    # Captions seen on at least this many distinct images are template or spam captions (common practice).
+    max_repeats: int = 5
+    # Lower-cased captions (punctuation stripped) treated as boilerplate.
+    boilerplate: list[str] = field(default_factory=lambda: list(DEFAULT_BOILERPLATE))
+
+    def validate(self) -> None:
+        if self.min_chars > self.max_chars:
+            raise ValueError("min_chars must be <= max_chars")
+        if self.max_repeats < 2:
+            raise ValueError("max_repeats must be >= 2")
+
+
+CHECKS = (
+    CheckSpec("caption_missing", "drop", "no caption sidecar, field or cell"),
+    CheckSpec("caption_unreadable", "drop", "the caption file could not be read or parsed"),
+    CheckSpec("caption_empty", "drop", "the caption is empty after normalisation"),
+    CheckSpec("caption_short", "drop", "fewer characters than the minimum"),
+    CheckSpec("caption_long", "drop", "more characters than the maximum"),
+    CheckSpec("caption_few_tokens", "drop", "fewer CLIP tokens than the minimum"),
+    CheckSpec("caption_many_tokens", "flag", "more CLIP tokens than the text encoder reads; the rest is cut"),
+    CheckSpec("caption_filename", "drop", "the caption looks like a file or camera name"),
+    CheckSpec("caption_boilerplate", "drop", "a placeholder caption such as 'image' or 'untitled'"),
+    CheckSpec("caption_repeated", "drop", "the same caption text on many different images"),
+)
+
+_CONTROL = re.compile(r"[\u0000-\u0008\u000b\u000c\u000e-\u001f\u007f-\u009f\u200b\ufeff]")
+_SPACE = re.compile(r"\s+")
+_IMG_EXT = r"(jpe?g|png|gif|webp|bmp|tiff?|heic|heif|raw|cr2|nef|arw|dng)"
+# Camera and phone file-name patterns (common practice: DCF-style prefixes such as IMG_, DSC, PXL_).
+_FILENAME = [
+    re.compile(rf"^[\w\-. ()\[\]]+\.{_IMG_EXT}$", re.I),
+    re.compile(r"^(img|dsc|dscn|dscf|dcim|pxl|mvimg|gopr|gp|dji|sam|cimg|pict|p|_mg|wp|vid|photo|image|pic|screenshot|scan)"
+               r"[ _\-]?\d[\d_\- ]{2,}[a-z]?$", re.I),
+    re.compile(r"^[0-9a-f]{16,}$", re.I),
+    re.compile(r"^[\d_\-. ]{6,}$"),
+    re.compile(r"^screenshot[ _\-]?\d{4}[\-_]?\d{2}[\-_]?\d{2}.*$", re.I),
+]
+_PUNCT = re.compile(r"[^\w\s/]+", re.UNICODE)
+
+
+def decode_caption(raw: bytes) -> tuple[str, bool]:
+    """Raw caption bytes -> (text, repaired). Invalid UTF-8 never raises."""
+    if raw.startswith(b"\xef\xbb\xbf"):
+        raw = raw[3:]
+    try:
+        return raw.decode("utf-8"), False
+    except UnicodeDecodeError:
+        pass
+    try:
+        return raw.decode("cp1252"), True
+    except UnicodeDecodeError:
+        return raw.decode("latin-1"), True
+
+
+def normalize(text: str) -> str:
+    """ftfy repair, NFC, control characters removed, whitespace collapsed."""
+    import ftfy
+
+    text = ftfy.fix_text(text, normalization="NFC")
+    text = unicodedata.normalize("NFC", text)
+    text = _CONTROL.sub(" ", text)
+    return _SPACE.sub(" ", text).strip()
+
+
+def caption_key(text: str) -> str:
+    """Key used to count repeats: case-folded, punctuation and spacing ignored."""
+    return _SPACE.sub(" ", _PUNCT.sub(" ", text.casefold())).strip()
+
+
+def looks_like_filename(text: str) -> bool:
+    t = text.strip()
+    return any(p.match(t) for p in _FILENAME)
+
+
+def clip_token_count(text: str) -> int:
+    """Tokens the CLIP text encoder sees, including its start and end tokens."""
+    from ..clip_tokens import count_tokens
+
+    return count_tokens(text) + 2
+
+
+def run(table: pa.Table, cfg: CaptionConfig, ctx: StageContext) -> pa.Table:
+    boiler = {caption_key(b) for b in cfg.boilerplate}
+    raws = table.column("caption_raw").to_pylist()
+    problems = table.column("caption_problem").to_pylist()
+    out_caption, out_chars, out_tokens, out_repaired, out_key, out_checks = [], [], [], [], [], []
+    for raw, problem in zip(raws, problems):
+        chks: list[dict] = []
+        text = chars = tokens = key = None
+        repaired = False
+        if problem is not None or raw is None:
+            chks.append(check(problem or "caption_missing", "no caption", None, True))
+        else:
+            decoded, repaired = decode_caption(raw)
+            text = normalize(decoded)
+            repaired = repaired or text != _SPACE.sub(" ", decoded).strip()
+            chars = len(text)
+            if not text:
+                chks.append(check("caption_empty", 0, ">0 chars", True))
+                text = None
+            else:
+                tokens = clip_token_count(text)
+                key = caption_key(text)
+                chks += [
+                    check("caption_short", chars, f">={cfg.min_chars} chars", chars < cfg.min_chars),
+                    check("caption_long", chars, f"<={cfg.max_chars} chars", chars > cfg.max_chars),
+                    check("caption_few_tokens", tokens - 2, f">={cfg.min_tokens} tokens", tokens - 2 < cfg.min_tokens),
+                    check("caption_many_tokens", tokens, f"<={cfg.max_tokens} tokens", tokens > cfg.max_tokens),
+                    check("caption_filename", text[:40], "not a file name", looks_like_filename(text)),
+                    check("caption_boilerplate", text[:40], "not a placeholder", key in boiler),
+                ]
+        out_caption.append(text)
+        out_chars.append(chars)
+        out_tokens.append(tokens)
+        out_repaired.append(repaired)
+        out_key.append(key)
+        out_checks.append(chks)
+        if ctx.progress is not None:
+            ctx.progress.advance(1)
+    return pa.table(
+        {
+            "sample_id": table.column("sample_id"),
+            "caption": pa.array(out_caption, pa.string()),
+            "caption_chars": pa.array(out_chars, pa.int32()),
+            "caption_tokens": pa.array(out_tokens, pa.int32()),
+            "caption_repaired": pa.array(out_repaired, pa.bool_()),
+            "caption_key": pa.array(out_key, pa.string()),
+            checks_column(NAME): pa.array(out_checks, type=CHECKS_TYPE),
+        }
+    )
+
+
+def run_repeats(table: pa.Table, cfg: CaptionConfig, ctx: StageContext) -> pa.Table:
+    """Global: a caption on >= max_repeats distinct images (by sha256, else by sample) fails for all of them."""
+    import pandas as pd
+
+    df = pd.DataFrame(
+        {
+            "key": table.column("caption_key").to_pandas(),
+            "img": table.column("sha256").to_pandas() if "sha256" in table.column_names else None,
+            "sid": table.column("sample_id").to_pandas(),
+        }
+    )
+    df["img"] = df["img"].fillna(df["sid"]) if "img" in df else df["sid"]
+    counts = df.dropna(subset=["key"]).groupby("key")["img"].nunique()
+    n = df["key"].map(counts)
+    out_checks = []
+    out_n = []
+    for key, cnt in zip(df["key"], n):
+        if key is None or pd.isna(cnt):
+            out_checks.append([])
+            out_n.append(None)
+            continue
+        cnt = int(cnt)
+        out_n.append(cnt)
+        out_checks.append(
+            [check("caption_repeated", f"{cnt} images", f"<{cfg.max_repeats} images", cnt >= cfg.max_repeats)]
+        )
+    return pa.table(
+        {
+            "sample_id": table.column("sample_id"),
+            "caption_images": pa.array(out_n, pa.int32()),
+            checks_column("caption_repeats"): pa.array(out_checks, type=CHECKS_TYPE),
+        }
+    )
+
+
+register(
+    Stage(name=NAME, version=VERSION, config_cls=CaptionConfig, fn=run, kind="shard", checks=CHECKS)
+)
+register(
+    Stage(
+        name="caption_repeats",
+        section="caption",
+        version=VERSION,
+        config_cls=CaptionConfig,
+        fn=run_repeats,
+        kind="global",
+        inputs=("inspect", "caption"),
+        checks=(),
+        parallel="inline",
+    )
+)

@@ -1,0 +1,34 @@
+"""Shared fixtures: small real images made with Pillow, a tiny corpus, the sample corpus."""
+from __future__ import annotations
+
+import io
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def jpeg_bytes(size=(400, 300), color=(180, 60, 40), quality=90, noise=True, **save_kw) -> bytes:
+    import numpy as np
+    from PIL import Image
+
+    rng = np.random.default_rng(sum(size) + sum(color))
+    arr = np.empty((size[1], size[0], 3), np.uint8)
+    arr[:] = color
+    if noise:
+        arr = np.clip(arr.astype(int) + rng.integers(-40, 40, arr.shape), 0, 255).astype(np.uint8)
+    buf = io.BytesIO()
+    Image.fromarray(arr).save(buf, "JPEG", quality=quality, **save_kw)
+    return buf.getvalue()
+
+
+@pytest.fixture(scope="session")
+def sample_corpus(tmp_path_factory) -> Path:
+    """The demo corpus, generated once per test session by its committed script."""
+    out = tmp_path_factory.mktemp("corpus") / "images"
+    subprocess.run([sys.executable, str(ROOT / "sample_corpus" / "make_corpus.py"), "--out", str(out)],
+                   check=True, cwd=ROOT)
+    return out
