@@ -32,3 +32,24 @@ def sample_corpus(tmp_path_factory) -> Path:
     subprocess.run([sys.executable, str(ROOT / "sample_corpus" / "make_corpus.py"), "--out", str(out)],
                    check=True, cwd=ROOT)
     return out
+
+
+def make_small_corpus(root: Path, n: int = 40, seed: int = 0) -> Path:
+    """n distinct noisy JPEGs with sidecar captions (a test fixture; not the demo corpus)."""
+    import numpy as np
+    from PIL import Image
+
+    rng = np.random.default_rng(seed)
+    root.mkdir(parents=True, exist_ok=True)
+    colours = ["red", "blue", "green", "amber", "white", "black", "teal", "ochre"]
+    items = ["mug", "bowl", "vase", "plate", "jug"]
+    for i in range(n):
+        arr = rng.integers(0, 255, (8, 8, 3)).astype(np.uint8)
+        img = Image.fromarray(arr).resize((320 + 8 * (i % 5), 320), Image.Resampling.BICUBIC)
+        sub = root / ("a" if i % 2 else "b")
+        sub.mkdir(exist_ok=True)
+        img.save(sub / f"item{i:03d}.jpg", quality=92)
+        (sub / f"item{i:03d}.txt").write_text(
+            f"a {colours[i % len(colours)]} {items[i % len(items)]} number {i} on a table", encoding="utf-8"
+        )
+    return root
