@@ -1,0 +1,80 @@
+"""End to end on the demo corpus: every planted case in sample_corpus/expected.csv gets its outcome."""
+from __future__ import annotations
+
+import csv
+import json
+from collections import defaultdict
+
+import pyarrow.parquet as pq
+import pytest
+
+from conftest import ROOT
+from curate import api
+from curate.stages.base import base_code
+
+
+@pytest.fixture(scope="module")
+def demo_run(sample_corpus, tmp_path_factory):
+    out = tmp_path_factory.mktemp("demo") / "out"
+    api.run(ROOT / "sample_corpus" / "curate.toml", input=str(sample_corpus), out=str(out))
+    rows = {r["source"]: r for r in pq.read_table(out / "ledger.parquet").to_pylist()}
+    with open(ROOT / "sample_corpus" / "expected.csv", newline="", encoding="utf-8") as f:
+        expected = list(csv.DictReader(f))
+    return out, rows, expected
+
+
+def test_every_file_has_a_ledger_row(demo_run, sample_corpus):
+    _, rows, expected = demo_run
+    assert set(rows) == {e["source"] for e in expected}
+
+
+def test_planted_drops_have_their_reason(demo_run):
+    _, rows, expected = demo_run
+    misses = []
+    for e in expected:
+        if e["expect"] != "dropped":
+            continue
+        r = rows[e["source"]]
+        if r["kept"] or e["reason"] not in {base_code(c) for c in r["reasons"]}:
+            misses.append((e["source"], e["reason"], r["reasons"]))
+    assert not misses, misses
+
+
+def test_planted_flags_are_raised(demo_run):
+    _, rows, expected = demo_run
+    misses = [(e["source"], e["reason"], rows[e["source"]]["flags"]) for e in expected
+              if e["expect"] == "flagged" and e["reason"] not in rows[e["source"]]["flags"]]
+    assert not misses, misses
+
+
+def test_good_samples_are_kept(demo_run):
+    _, rows, expected = demo_run
+    lost = [(e["source"], rows[e["source"]]["reasons"]) for e in expected
+            if e["expect"] in ("kept", "flagged") and not rows[e["source"]]["kept"]]
+    assert not lost, lost
+
+
+def test_duplicate_groups(demo_run):
+    _, rows, expected = demo_run
+    groups = defaultdict(list)
+    for e in expected:
+        if e["group"]:
+            groups[e["group"]].append(e)
+    assert groups
+    for label, members in groups.items():
+        ids = {rows[m["source"]]["group_id"] for m in members}
+        assert len(ids) == 1, (label, ids)  # every copy lands in one group
+        kept = [m for m in members if rows[m["source"]]["kept"]]
+        assert len(kept) == 1, (label, [m["source"] for m in kept])
+        for m in members:
+            if m["expect"] == "kept":
+                assert rows[m["source"]]["kept"], (label, m["source"])
+
+
+def test_summary_counts_match_the_ledger(demo_run):
+    out, rows, _ = demo_run
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["samples"] == len(rows)
+    assert summary["kept"] == sum(r["kept"] for r in rows.values())
+    for code, n in summary["by_reason"].items():
+        assert n == sum(code in {base_code(c) for c in r["reasons"]} for r in rows.values())
