@@ -6,12 +6,18 @@ of a sample, not just the first.
 """
 from __future__ import annotations
 
-from typing import Iterable
+from typing import TYPE_CHECKING, Iterable
 
-from .stages.base import CheckSpec, base_code
+if TYPE_CHECKING:  # stages import this module, so nothing from stages is imported at load time
+    from .stages.base import CheckSpec
 
 
-def action_for(code: str, specs: dict[str, CheckSpec], overrides: dict[str, str]) -> str:
+def base_code(code: str) -> str:
+    """Reason codes may carry a detail after ':' (e.g. 'agreement_low:absolute<0.28')."""
+    return code.split(":", 1)[0]
+
+
+def action_for(code: str, specs: "dict[str, CheckSpec]", overrides: dict[str, str]) -> str:
     b = base_code(code)
     if b in overrides:
         return overrides[b]
@@ -21,7 +27,7 @@ def action_for(code: str, specs: dict[str, CheckSpec], overrides: dict[str, str]
 
 def verdict(
     check_lists: Iterable[list[dict] | None],
-    specs: dict[str, CheckSpec],
+    specs: "dict[str, CheckSpec]",
     overrides: dict[str, str],
     *,
     skip_codes: frozenset[str] = frozenset(),

@@ -131,6 +131,4 @@ def all_checks() -> dict[str, CheckSpec]:
     return out
 
 
-def base_code(code: str) -> str:
-    """Reason codes may carry a detail after ':' (e.g. 'agreement_low:absolute<0.28')."""
-    return code.split(":", 1)[0]
+from ..policy import base_code  # noqa: E402,F401  (one definition, re-exported for stages)

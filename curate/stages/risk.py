@@ -76,7 +76,7 @@ def find_pii(text: str, kinds: list[str]) -> list[tuple[str, str]]:
     hits: list[tuple[str, str]] = []
     if "email" in kinds:
         hits += [("email", m.group()) for m in _EMAIL.finditer(text)]
-    card_spans: list[tuple[int, int]] = []
+    card_spans: list[tuple[int, int]] = []  # card and IBAN spans: their digit groups are not phones
     if "card" in kinds:
         for m in _CARD.finditer(text):
             digits = re.sub(r"\D", "", m.group())
@@ -84,11 +84,14 @@ def find_pii(text: str, kinds: list[str]) -> list[tuple[str, str]]:
                 hits.append(("card", m.group()))
                 card_spans.append(m.span())
     if "iban" in kinds:
-        hits += [("iban", m.group()) for m in _IBAN.finditer(text) if iban_valid(m.group())]
+        for m in _IBAN.finditer(text):
+            if iban_valid(m.group()):
+                hits.append(("iban", m.group()))
+                card_spans.append(m.span())
     if "phone" in kinds:
         for m in _PHONE.finditer(text):
             digits = re.sub(r"\D", "", m.group())
-            inside_card = any(a <= m.start() and m.end() <= b for a, b in card_spans)
+            inside_card = any(a <= m.start() < b for a, b in card_spans)
             if 7 <= len(digits) <= 15 and not inside_card and not re.fullmatch(r"(19|20)\d{2}", digits):
                 hits.append(("phone", m.group()))
     if "url" in kinds:
