@@ -10,13 +10,15 @@ from .errors import ConfigError, InputError
 
 
 def load(config: str | Path | None, *, input: str | None = None, sets: tuple[str, ...] | list[str] = (),
-         engine: str | None = None) -> PipelineConfig:
+         engine: str | None = None, eval_sets: list[str] | None = None) -> PipelineConfig:
     """Resolve a pipeline config: defaults < file < sets < explicit arguments."""
     from .plan import config_sections
 
     cfg = load_config(config, sets, config_sections())
     if input is not None:
         cfg.input.path = str(Path(input).resolve())
+    if eval_sets:
+        cfg.split.eval_sets = list(cfg.split.eval_sets) + [str(Path(p).resolve()) for p in eval_sets]
     if engine is not None:
         if engine not in ("local", "ray"):
             raise ConfigError(f"expected engine local or ray, got {engine!r}", key="run.engine")
@@ -30,11 +32,14 @@ def load(config: str | Path | None, *, input: str | None = None, sets: tuple[str
 
 
 def run(config: str | Path | None, *, out: str | Path, input: str | None = None,
-        sets: tuple[str, ...] | list[str] = (), engine: str | None = None, progress: Any = None) -> Any:
-    """Run the whole pipeline; returns a runner.RunResult. Outputs land in `out`."""
+        sets: tuple[str, ...] | list[str] = (), engine: str | None = None, eval_sets: list[str] | None = None,
+        progress: Any = None) -> Any:
+    """Run the whole pipeline; returns a runner.RunResult. Outputs land in `out`.
+
+    eval_sets: outside evaluation sets; training candidates that near-duplicate them are dropped."""
     from .runner import run_pipeline
 
-    cfg = load(config, input=input, sets=sets, engine=engine)
+    cfg = load(config, input=input, sets=sets, engine=engine, eval_sets=eval_sets)
     return run_pipeline(cfg, out, progress=progress)
 
 
@@ -93,3 +98,13 @@ def init(path: str | Path, *, preset: str = "default", force: bool = False) -> P
     p.write_text(commented_template(sections, values, header), encoding="utf-8")
     load_config(p, (), config_sections())  # what we write must load
     return p
+
+
+def leakcheck(a: str | Path, b: str | Path, *, radius: int | None = None, semantic: float = 0.0,
+              model: str = "", pretrained: str = "", config: str | Path | None = None,
+              html: str | Path | None = None, cache_dir: str | Path | None = None, workers: int = 1) -> dict:
+    """Near-duplicate pairs across two image sets (folders, manifests, tar or shard sets, outputs)."""
+    from .leakcheck import leakcheck as _leakcheck
+
+    return _leakcheck(a, b, radius=radius, semantic=semantic, model=model, pretrained=pretrained, config=config,
+                      html=html, cache_dir=cache_dir, workers=workers)

@@ -19,7 +19,8 @@ def _cmd_run(a: argparse.Namespace) -> int:
     from .progress import BarProgress, NullProgress
 
     progress = BarProgress() if (not a.quiet and sys.stderr.isatty()) else NullProgress()
-    res = api.run(a.config, out=a.out, input=a.input, sets=a.set, engine=a.engine, progress=progress)
+    res = api.run(a.config, out=a.out, input=a.input, sets=a.set, engine=a.engine, eval_sets=a.eval_set,
+                  progress=progress)
     summary = json.loads((__import__("pathlib").Path(a.out) / "summary.json").read_text())
     if a.json:
         print(json.dumps({"out": res.out_dir, "summary": summary, "ran": res.ran, "reused": res.reused}))
@@ -129,6 +130,9 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--set", action="append", default=[], metavar="SECTION.KEY=VALUE",
                    help="override one config entry (repeatable), e.g. --set inspect.min_short_side=512")
     r.add_argument("--engine", choices=["local", "ray"], help="where per-shard stages run (default: config)")
+    r.add_argument("--eval-set", action="append", default=[], metavar="PATH",
+                   help="an outside eval set (folder, manifest or shards); training images that near-duplicate "
+                        "it are dropped as eval_overlap (repeatable; adds to [split] eval_sets)")
     r.add_argument("--json", action="store_true", help="print the summary as one JSON line")
     r.add_argument("--quiet", action="store_true", help="no progress bars")
     r.set_defaults(func=_cmd_run)
@@ -159,12 +163,51 @@ def build_parser() -> argparse.ArgumentParser:
     return p
 
 
+def _cmd_leakcheck(a: argparse.Namespace) -> int:
+    import os
+
+    from . import api
+
+    workers = a.workers if a.workers > 0 else (os.cpu_count() or 1)
+    res = api.leakcheck(a.a, a.b, radius=a.radius, semantic=a.semantic, model=a.model, pretrained=a.pretrained,
+                        config=a.config, html=a.html, cache_dir=a.cache_dir, workers=workers)
+    pairs = res["pairs"]
+    if a.json:
+        print(json.dumps(res))
+        return 1 if pairs else 0
+    for p in pairs:
+        d = f"cosine {p['cosine']}" if p["signal"] == "semantic" else f"{p['distance']:>2} bits"
+        print(f"{d}  {p['a']}  <->  {p['b']}")
+    for side in ("a", "b"):
+        if res[f"{side}_unreadable"]:
+            print(f"note: {len(res[side + '_unreadable'])} image(s) of {side.upper()} could not be decoded")
+    verdict = f"LEAKS: {len(pairs)} near-duplicate pair(s)" if pairs else "clean: no near-duplicate pair"
+    print(f"{verdict} within {res['radius']} bits"
+          + (f" or cosine >= {res['semantic']}" if res["semantic"] else "")
+          + f"; A {res['a_count']} images, B {res['b_count']} images; {res['seconds']:.2f}s")
+    if a.html:
+        print(f"page:     {a.html}")
+    return 1 if pairs else 0
+
+
 def _add_leakcheck(sub: Any) -> None:
-    try:
-        from .leakcheck_cli import add_parser
-    except ImportError:
-        return
-    add_parser(sub)
+    lk = sub.add_parser("leakcheck", help="find near-duplicate images shared by two sets (eval leaks)",
+                        description="List every pair of near-duplicate images across two sets, each a folder, "
+                                    "a manifest, tar shards, a shard set (Parquet with an image column) or a "
+                                    "curate output. The search is exact. Exit 1 when any pair is found.")
+    lk.add_argument("a", help="first set (e.g. the training shards)")
+    lk.add_argument("b", help="second set (e.g. the eval shards or a benchmark folder)")
+    lk.add_argument("--radius", type=int, help="Hamming radius in bits of 64 (default: neardup's)")
+    lk.add_argument("--semantic", type=float, default=0.0, metavar="COSINE",
+                    help="also match CLIP embeddings with cosine >= COSINE (needs --model or --config)")
+    lk.add_argument("--model", default="", help="CLIP model for --semantic (open_clip name or demo)")
+    lk.add_argument("--pretrained", default="", help="pretrained tag or checkpoint for --model")
+    lk.add_argument("--config", help="pipeline config whose [inspect]/[hashes]/[embed] settings to use")
+    lk.add_argument("--html", help="write a page with each pair's thumbnails side by side")
+    lk.add_argument("--cache-dir", help="keep each set's hashes here for the next check")
+    lk.add_argument("--workers", type=int, default=0, help="hashing processes; 0 = one per CPU core")
+    lk.add_argument("--json", action="store_true", help='print JSON: {"pairs": [{"a", "b", "distance"}, ...], ...}')
+    lk.set_defaults(func=_cmd_leakcheck)
 
 
 def main(argv: list[str] | None = None) -> int:

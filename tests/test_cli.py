@@ -12,7 +12,7 @@ from conftest import ROOT, make_small_corpus
 from curate import api
 from curate.cli import build_parser, main
 
-FAST = ["--set", "run.workers=1"]
+FAST = ["--set", "run.workers=1", "--set", "embed.enabled=false"]
 
 
 def _commands() -> dict:

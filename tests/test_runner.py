@@ -17,7 +17,7 @@ from curate import api
 from curate.errors import LockedError
 from curate.workdir import RunLock
 
-FAST = ["embed.enabled=false", "agreement.enabled=false"]
+FAST = ["embed.enabled=false"]
 
 
 def _sets(*extra):
