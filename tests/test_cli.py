@@ -104,3 +104,11 @@ def test_init_writes_and_refuses_to_overwrite(tmp_path):
     assert main(["init", str(p)]) == 2
     assert main(["init", str(p), "--force", "--preset", "finetune"]) == 0
     assert "min_short_side = 512" in p.read_text()
+
+
+def test_every_reason_code_is_documented_in_the_readme():
+    from curate.stages import all_checks
+
+    readme = (ROOT / "README.md").read_text(encoding="utf-8")
+    for code in all_checks():
+        assert f"`{code}" in readme, f"README's reason table lacks {code}"

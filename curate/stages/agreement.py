@@ -1,0 +1,180 @@
+"""agreement: does the caption describe the image? CLIP cosine of the two embeddings.
+
+A global stage: percentile mode ranks the whole corpus. Columns: `agreement` (cosine of the
+image and caption embeddings), `clip_score` (CLIPScore, Hessel et al., EMNLP 2021,
+arXiv 2104.08718: 2.5 * max(cos, 0)) and one `agreement_low:<mode and threshold>` check per
+sample with embeddings. Samples without embeddings get nulls and no check (their reasons come
+from the stages that stopped them).
+
+Thresholds are model-specific (a ViT-B/32 cosine is not comparable with a ViT-L/14 one), so
+absolute mode takes its default from a per-model table with sources; percentile mode needs no
+calibration.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Any, Literal
+
+import numpy as np
+import pyarrow as pa
+
+from ..errors import ConfigError
+from .base import CHECKS_TYPE, CheckSpec, Stage, StageContext, check, checks_column, register
+
+NAME = "agreement"
+VERSION = "1"
+
+# CLIPScore weight w (Hessel et al. 2021, sec. 3): CLIP-S(c, v) = w * max(cos(c, v), 0), w = 2.5.
+CLIPSCORE_WEIGHT = 2.5
+
+_LAION5B = ("LAION-5B (Schuhmann et al., NeurIPS 2022, arXiv 2210.08402, sec. 3.1): English pairs with "
+            "OpenAI CLIP ViT-B/32 cosine below 0.28 removed. LAION-400M (arXiv 2111.02114) used 0.30.")
+# (embed.model, embed.pretrained) -> (cosine threshold, where it comes from). The demo model's entry
+# is read from its own JSON (calibrated by tools/train_demo_model.py), see default_threshold().
+DEFAULT_THRESHOLDS: dict[tuple[str, str], tuple[float, str]] = {
+    ("ViT-B-32", "openai"): (0.28, _LAION5B),
+    ("ViT-B-32-quickgelu", "openai"): (0.28, _LAION5B),
+}
+
+
+@dataclass
+class AgreementConfig:
+    enabled: bool = True
+    # "absolute": drop pairs whose cosine is below `threshold`; "percentile": keep the top
+    # `keep_percent` % of this corpus by cosine (DataComp's CLIP-score baseline, Gadre et al. 2023).
+    mode: Literal["absolute", "percentile"] = "absolute"
+    # Cosine threshold for absolute mode; unset = the default for embed.model/embed.pretrained
+    # (LAION-5B's 0.28 for OpenAI ViT-B/32; the demo model's calibrated value).
+    threshold: float | None = None
+    # Percentile mode: share of samples with embeddings to keep. DataComp's baseline kept the top
+    # 30% by OpenAI ViT-L/14 cosine (Gadre et al., NeurIPS 2023, arXiv 2304.14108; from memory).
+    keep_percent: float = 30.0
+
+    def validate(self) -> None:
+        if self.threshold is not None and not -1.0 <= self.threshold <= 1.0:
+            raise ValueError(f"threshold is a cosine and must lie in [-1, 1], got {self.threshold}")
+        if not 0.0 < self.keep_percent <= 100.0:
+            raise ValueError(f"keep_percent must be in (0, 100], got {self.keep_percent}")
+
+
+CHECKS = (
+    CheckSpec("agreement_low", "drop",
+              "the caption does not describe the image: CLIP image-caption cosine below the threshold "
+              "(detail: absolute<T, or topX%<T for percentile mode)"),
+)
+
+
+def clip_score(cos: np.ndarray) -> np.ndarray:
+    """CLIPScore (Hessel et al. 2021): 2.5 * max(cos, 0)."""
+    return CLIPSCORE_WEIGHT * np.maximum(cos, 0.0)
+
+
+def default_threshold(model: str, pretrained: str) -> tuple[float, str]:
+    """The absolute-mode default for a model, with its source; ConfigError when there is none."""
+    from ..models import clip as clipmod
+
+    if model == clipmod.DEMO_NAME:
+        cal = clipmod.demo_calibration()
+        return float(cal["threshold"]), "demo model calibration (curate/models/demo/clip_demo.json): " + cal["method"]
+    if (model, pretrained) in DEFAULT_THRESHOLDS:
+        return DEFAULT_THRESHOLDS[(model, pretrained)]
+    known = ", ".join(f"{m}/{p}" for m, p in DEFAULT_THRESHOLDS)
+    raise ConfigError(
+        f"no default agreement threshold for embed.model={model!r} embed.pretrained={pretrained!r} (known: "
+        f"{known}, demo); cosines are model-specific: set agreement.threshold, or use agreement.mode = "
+        "'percentile'",
+        key="agreement.threshold",
+    )
+
+
+def resolve_threshold(cfg: AgreementConfig, config: Any) -> tuple[float, str]:
+    if cfg.threshold is not None:
+        return float(cfg.threshold), "agreement.threshold in the pipeline config"
+    embed = config.section("embed")
+    return default_threshold(embed.model, embed.pretrained)
+
+
+def embedding_matrix(column: pa.ChunkedArray | pa.Array) -> tuple[np.ndarray, np.ndarray]:
+    """A fixed-size-list embedding column -> (float32 [n, d] matrix, bool [n] valid mask)."""
+    arr = column.combine_chunks() if isinstance(column, pa.ChunkedArray) else column
+    if not pa.types.is_fixed_size_list(arr.type):
+        raise TypeError(f"expected a fixed-size list column, got {arr.type}")
+    dim = arr.type.list_size
+    n = len(arr)
+    values = np.asarray(arr.values.to_numpy(zero_copy_only=False))[arr.offset * dim:(arr.offset + n) * dim]
+    mat = values.astype(np.float32).reshape(n, dim)
+    valid = ~np.asarray(arr.is_null().to_numpy(zero_copy_only=False), dtype=bool)
+    return mat, valid
+
+
+def cosines(image: np.ndarray, text: np.ndarray) -> np.ndarray:
+    """Row-wise cosine, re-normalised (stored vectors are float16, unit length only to ~1e-3)."""
+    num = np.einsum("ij,ij->i", image, text)
+    den = np.linalg.norm(image, axis=1) * np.linalg.norm(text, axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(den > 0, num / np.where(den > 0, den, 1.0), np.nan).astype(np.float32)
+
+
+def percentile_threshold(cos: np.ndarray, keep_percent: float) -> float:
+    """The cosine of the k-th best sample, k = ceil(n * keep_percent / 100): keep cos >= it."""
+    k = max(1, math.ceil(len(cos) * keep_percent / 100.0 - 1e-9))
+    return float(np.sort(cos)[::-1][k - 1])
+
+
+def run(table: pa.Table, cfg: AgreementConfig, ctx: StageContext) -> pa.Table:
+    n = table.num_rows
+    img, img_ok = embedding_matrix(table.column("image_emb"))
+    txt, txt_ok = embedding_matrix(table.column("text_emb"))
+    cos = cosines(img, txt)
+    valid = img_ok & txt_ok & np.isfinite(cos)
+    if cfg.mode == "percentile":
+        thr = percentile_threshold(cos[valid], cfg.keep_percent) if valid.any() else None
+        detail = None if thr is None else f"top{cfg.keep_percent:g}%<{thr:.3f}"
+    else:
+        thr, _ = resolve_threshold(cfg, ctx.config)
+        detail = f"absolute<{thr:g}"
+    checks = []
+    for i in range(n):
+        if not valid[i]:
+            checks.append([])
+            continue
+        checks.append([check(f"agreement_low:{detail}", round(float(cos[i]), 4), f">={thr:.4g}",
+                             bool(cos[i] < thr))])
+    agreement = pa.array(np.where(valid, cos, 0.0).astype(np.float32), mask=~valid)
+    score = pa.array(clip_score(np.where(valid, cos, 0.0)).astype(np.float32), mask=~valid)
+    if ctx.progress is not None:
+        ctx.progress.advance(n)
+    return pa.Table.from_arrays(
+        [table.column("sample_id"), agreement, score, pa.array(checks, type=CHECKS_TYPE)],
+        names=["sample_id", "agreement", "clip_score", checks_column(NAME)],
+    )
+
+
+def identity(config: Any) -> dict:
+    """The threshold this run will use and where it comes from (fails early when there is none)."""
+    cfg = config.section(NAME)
+    if cfg.mode == "percentile":
+        return {"mode": "percentile", "keep_percent": cfg.keep_percent}
+    thr, source = resolve_threshold(cfg, config)
+    return {"mode": "absolute", "threshold": thr, "threshold_source": source}
+
+
+def _active(config: Any) -> bool:
+    return bool(config.section(NAME).enabled and config.section("embed").enabled)
+
+
+register(
+    Stage(
+        name=NAME,
+        version=VERSION,
+        config_cls=AgreementConfig,
+        fn=run,
+        kind="global",
+        inputs=("embed",),
+        reads_sections=("embed",),
+        checks=CHECKS,
+        active=_active,
+        identity=identity,
+    )
+)

@@ -1,0 +1,302 @@
+"""neardup: put every copy of a picture in one group and keep only the best copy.
+
+A global stage: it sees every decoded sample at once. Three signals link two samples, strongest
+first: the same file bytes (sha256, no search at all), perceptual codes within `radius` bits (the
+closest pair of the two samples' views, found by exact multi-index Hamming search; same pairs as
+brute force), and, when the embed stage ran and `semantic` is on, image embeddings with cosine >=
+`cosine` (SemDeDup-style search within k-means clusters beyond `cosine_exact_max` samples). Linked
+samples form groups (union-find, so links chain).
+
+The keeper of a group is, in order: a sample no other check drops, the most pixels (width*height),
+the highest agreement, the smallest sample_id. Every other member fails the `duplicate` check; its
+`dup_of` names the keeper, `dup_signal` the strongest signal linking it to the keeper
+("sha256" < "phash"/"dhash" < "embedding") and `dup_distance` its distance to the keeper in that
+signal's unit: Hamming bits of the closest views for sha256 (0) and hash codes, 1 - cosine for
+embeddings. `group_id` is the keeper's sample_id (a lone sample is its own group), so it is stable
+while the keeper stays.
+"""
+from __future__ import annotations
+
+import logging
+import os
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from .. import hashing
+from ..policy import verdict
+from . import hashes as hashes_mod
+from .base import CHECKS_TYPE, CheckSpec, Stage, StageContext, all_checks, check, checks_column, register
+
+log = logging.getLogger(__name__)
+
+NAME = "neardup"
+VERSION = "1"
+
+
+@dataclass
+class NeardupConfig:
+    enabled: bool = True
+    # Largest Hamming distance (bits of 64, closest views) for two samples to be copies. Measured in
+    # bench/neardup_quality.py at the default [hashes]: edited copies <= 8, distinct photos >= 12.
+    # pHash codes split 32/32 around their median, so distances are even: 8 and 9 act the same.
+    radius: int = 8
+    # Also link samples by image-embedding cosine when the embed stage ran (SemDeDup, Abbas et al. 2023).
+    semantic: bool = True
+    # Cosine at or above which two images are copies. High on purpose: it must not merge different
+    # photos of one subject. Measured with the demo model: distinct photos up to 0.986
+    # (bench/neardup_quality.py --semantic). SemDeDup's own thresholds are lower: they remove
+    # different photos of one subject on purpose.
+    cosine: float = 0.99
+    # Up to this many samples every embedding pair is compared (exact); beyond, k-means clusters.
+    cosine_exact_max: int = 20_000
+    # k-means clusters for the semantic search beyond cosine_exact_max; 0 = sqrt(samples).
+    clusters: int = 0
+    # Nearest clusters each sample is searched in (1 = SemDeDup; more finds pairs split by a border).
+    probes: int = 2
+    # Seed of the k-means initialisation (same input and seed, same groups).
+    seed: int = 0
+
+    def validate(self) -> None:
+        if not 0 <= self.radius <= 32:
+            raise ValueError(f"radius must be within 0..32 bits, got {self.radius}")
+        if not 0.0 < self.cosine <= 1.0:
+            raise ValueError(f"cosine must be within (0, 1], got {self.cosine}")
+        if self.clusters < 0 or self.probes < 1 or self.cosine_exact_max < 0:
+            raise ValueError("clusters must be >= 0, probes >= 1, cosine_exact_max >= 0")
+
+
+CHECKS = (
+    CheckSpec("duplicate", "drop", "a copy (same bytes, near-identical picture or embedding) of the group's kept sample"),
+)
+
+OUTPUT_SCHEMA = pa.schema(
+    [
+        ("sample_id", pa.string()),
+        ("group_id", pa.string()),
+        ("group_size", pa.int32()),
+        ("dup_of", pa.string()),
+        ("dup_signal", pa.string()),
+        ("dup_distance", pa.float32()),
+        (checks_column(NAME), CHECKS_TYPE),
+    ]
+)
+
+
+def _embeddings(table: pa.Table, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(float32 (len(rows), d), has) for the given rows of the image_emb column."""
+    col = table.column("image_emb").combine_chunks()
+    sub = col.take(pa.array(rows, type=pa.int64()))
+    has = np.asarray(sub.is_valid().to_numpy(zero_copy_only=False), dtype=bool)
+    if not has.any():
+        return np.zeros((len(rows), 0), np.float32), has
+    if pa.types.is_fixed_size_list(sub.type):
+        d = sub.type.list_size
+        child = sub.values.to_numpy(zero_copy_only=False)
+        emb = np.asarray(child[sub.offset * d : (sub.offset + len(sub)) * d], dtype=np.float32).reshape(len(sub), d)
+    else:
+        vals = sub.to_pylist()
+        d = len(next(v for v in vals if v is not None))
+        emb = np.zeros((len(vals), d), np.float32)
+        for i, v in enumerate(vals):
+            if v is not None:
+                emb[i] = v
+    emb[~has] = 0
+    return emb, has
+
+
+def _dropped_elsewhere(table: pa.Table, rows: np.ndarray, ctx: StageContext) -> np.ndarray:
+    """Whether another stage's checks already drop each of the given rows."""
+    cols = [c for c in table.column_names if c.endswith(".checks") and c != checks_column(NAME)]
+    out = np.zeros(len(rows), dtype=bool)
+    if not cols or not len(rows):
+        return out
+    specs = all_checks()
+    decide = getattr(ctx.config, "decide", None) if ctx.config is not None else None
+    overrides = dict(getattr(decide, "actions", {}) or {})
+    idx = pa.array(rows, type=pa.int64())
+    lists = [table.column(c).take(idx).to_pylist() for c in cols]
+    for k in range(len(rows)):
+        reasons, _ = verdict((lst[k] for lst in lists), specs, overrides, skip_codes=frozenset({"duplicate"}))
+        out[k] = bool(reasons)
+    return out
+
+
+def _keepers(labels: np.ndarray, rank: np.ndarray) -> np.ndarray:
+    """For each element, the element of its group with the lowest rank."""
+    order = np.lexsort((rank, labels))
+    lab_sorted = labels[order]
+    first = np.concatenate(([True], lab_sorted[1:] != lab_sorted[:-1]))
+    group_first = order[first]
+    group_of_sorted = np.cumsum(first) - 1
+    keeper = np.empty_like(labels)
+    keeper[order] = group_first[group_of_sorted]
+    return keeper
+
+
+def group_samples(
+    sha_key: np.ndarray,
+    codes: np.ndarray | None,
+    has_codes: np.ndarray | None,
+    emb: np.ndarray | None,
+    has_emb: np.ndarray | None,
+    radius: int,
+    cosine: float,
+    *,
+    cosine_exact_max: int = 20_000,
+    clusters: int = 0,
+    probes: int = 2,
+    seed: int = 0,
+    threads: int = 1,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Group labels after each signal: (by sha256, + hash codes, + embeddings); a label is the
+    smallest member index. ``sha_key``: equal non-negative numbers for equal bytes, -1 unknown.
+    The searches run on one sample per distinct sha256 only."""
+    n = sha_key.shape[0]
+    key = np.where(sha_key >= 0, sha_key, -1 - np.arange(n))  # unknown bytes: a key of its own
+    _, first_idx, inv = np.unique(key, return_index=True, return_inverse=True)
+    rep_of = first_idx[inv.ravel()]  # each row's representative: the first row with its bytes
+    lab_sha = hashing.components(n, np.arange(n), rep_of)
+    reps = np.unique(rep_of)
+    ei, ej = [np.arange(n)], [rep_of]
+    if codes is not None and has_codes is not None:
+        r = reps[has_codes[reps]]
+        if r.shape[0] > 1:
+            lab = hashing.sample_components(codes[r], radius, threads=threads)
+            ei.append(r)
+            ej.append(r[lab])
+    lab_hash = hashing.components(n, np.concatenate(ei), np.concatenate(ej))
+    lab_all = lab_hash
+    if emb is not None and has_emb is not None and emb.shape[1] > 0:
+        r = reps[has_emb[reps]]
+        if r.shape[0] > 1:
+            p = hashing.cosine_pairs(
+                emb[r], cosine, clusters=clusters or None, probes=probes, cosine_exact_max=cosine_exact_max, seed=seed
+            )
+            if len(p):
+                lab_all = hashing.components(n, np.concatenate([np.arange(n), r[p.i]]), np.concatenate([lab_hash, r[p.j]]))
+    return lab_sha, lab_hash, lab_all
+
+
+def _sha_keys(table: pa.Table, rows: np.ndarray) -> np.ndarray:
+    """Equal numbers for equal sha256 values among the given rows, -1 where unknown."""
+    if "sha256" not in table.column_names or not len(rows):
+        return np.full(len(rows), -1, np.int64)
+    col = table.column("sha256").take(pa.array(rows, type=pa.int64())).combine_chunks()
+    enc = col.dictionary_encode().indices
+    return np.asarray(enc.fill_null(-1).to_numpy(zero_copy_only=False), dtype=np.int64)
+
+
+def run(table: pa.Table, cfg: NeardupConfig, ctx: StageContext) -> pa.Table:
+    n = table.num_rows
+    sample_id = table.column("sample_id").to_pylist()
+    decoded = np.asarray(table.column("decoded").fill_null(False).to_numpy(zero_copy_only=False), dtype=bool)
+    rows = np.flatnonzero(decoded)
+    m = rows.shape[0]
+
+    hcfg = getattr(ctx.config, "hashes", None) if ctx.config is not None else None
+    codes = has_codes = None
+    signal_name = "phash"
+    if hcfg is not None and getattr(hcfg, "enabled", False) and hashes_mod.codes_column(hcfg) in table.column_names:
+        signal_name = hashes_mod.codes_column(hcfg)
+        all_codes, all_has = hashes_mod.codes_matrix(table.column(signal_name), hashes_mod.variants(hcfg))
+        codes, has_codes = all_codes[rows], all_has[rows]
+    emb = has_emb = None
+    if cfg.semantic and "image_emb" in table.column_names and m:
+        emb, has_emb = _embeddings(table, rows)
+
+    threads = max(1, min(int(getattr(ctx, "workers", 0) or os.cpu_count() or 1), 4))
+    lab_sha, lab_hash, lab_all = group_samples(
+        _sha_keys(table, rows), codes, has_codes, emb, has_emb, cfg.radius, cfg.cosine,
+        cosine_exact_max=cfg.cosine_exact_max, clusters=cfg.clusters, probes=cfg.probes, seed=cfg.seed,
+        threads=threads,
+    )
+
+    # Keeper rule. Only samples in groups of two or more need the (slower) verdict lookup.
+    sizes = np.bincount(lab_all, minlength=m) if m else np.zeros(0, np.int64)
+    in_group = np.flatnonzero(sizes[lab_all] > 1) if m else np.zeros(0, np.int64)
+    dropped = np.zeros(m, dtype=bool)
+    dropped[in_group] = _dropped_elsewhere(table, rows[in_group], ctx)
+    width = table.column("width").fill_null(0).to_numpy(zero_copy_only=False)[rows].astype(np.int64)
+    height = table.column("height").fill_null(0).to_numpy(zero_copy_only=False)[rows].astype(np.int64)
+    agree = np.full(m, -np.inf)
+    if "agreement" in table.column_names:
+        a = table.column("agreement").to_numpy(zero_copy_only=False)[rows].astype(np.float64)
+        agree = np.where(np.isnan(a), -np.inf, a)
+    ids = [sample_id[i] for i in rows]
+    # Rank: not dropped elsewhere, most pixels, highest agreement, smallest sample_id.
+    id_rank = np.empty(m, np.int64)
+    if m:
+        by_id = pc.sort_indices(table.column("sample_id").take(pa.array(rows, type=pa.int64())))
+        id_rank[by_id.to_numpy()] = np.arange(m)
+    rank_order = np.lexsort((id_rank, -agree, -(width * height), dropped))
+    rank = np.empty(m, np.int64)
+    rank[rank_order] = np.arange(m)
+    keeper = _keepers(lab_all, rank) if m else np.zeros(0, np.int64)
+
+    group_id: list[str | None] = [None] * n
+    group_size: list[int | None] = [None] * n
+    dup_of: list[str | None] = [None] * n
+    dup_signal: list[str | None] = [None] * n
+    dup_distance: list[float | None] = [None] * n
+    checks: list[list[dict]] = [[] for _ in range(n)]
+    others = np.flatnonzero(keeper != np.arange(m))
+    dist_hash = np.zeros(m, np.float64)
+    if codes is not None and others.shape[0]:
+        both = has_codes[others] & has_codes[keeper[others]]
+        d = np.full(others.shape[0], np.nan)
+        d[both] = hashing.min_distances(codes[others[both]], codes[keeper[others[both]]])
+        dist_hash[others] = d
+    dist_emb = np.zeros(m, np.float64)
+    if emb is not None and emb.shape[1] and others.shape[0]:
+        dist_emb[others] = 1.0 - np.einsum("ij,ij->i", emb[others], emb[keeper[others]])
+    thresholds = {"sha256": "same sha256", signal_name: f"<={cfg.radius} bits", "embedding": f">={cfg.cosine:g} cosine"}
+    for k in range(m):
+        i = rows[k]
+        kk = keeper[k]
+        gid = ids[kk]
+        group_id[i] = gid
+        group_size[i] = int(sizes[lab_all[k]])
+        if kk == k:
+            value = "no copy" if group_size[i] == 1 else f"kept over {group_size[i] - 1} copies"
+            checks[i] = [check("duplicate", value, f"<={cfg.radius} bits", False)]
+            continue
+        if lab_sha[k] == lab_sha[kk]:
+            sig, dist = "sha256", 0.0
+        elif lab_hash[k] == lab_hash[kk]:
+            sig, dist = signal_name, float(dist_hash[k])
+        else:
+            sig, dist = "embedding", float(max(dist_emb[k], 0.0))
+        dup_of[i], dup_signal[i], dup_distance[i] = gid, sig, dist
+        shown = f"{dist:.4g}" if sig == "embedding" else f"{int(dist)}" if dist == dist else "?"
+        checks[i] = [check("duplicate", f"copy of {gid} ({sig}, distance {shown})", thresholds[sig], True)]
+    return pa.Table.from_arrays(
+        [
+            table.column("sample_id"),
+            pa.array(group_id, pa.string()),
+            pa.array(group_size, pa.int32()),
+            pa.array(dup_of, pa.string()),
+            pa.array(dup_signal, pa.string()),
+            pa.array(dup_distance, pa.float32()),
+            pa.array(checks, CHECKS_TYPE),
+        ],
+        schema=OUTPUT_SCHEMA,
+    )
+
+
+register(
+    Stage(
+        name=NAME,
+        version=VERSION,
+        config_cls=NeardupConfig,
+        fn=run,
+        kind="global",
+        inputs=("inspect", "caption", "caption_repeats", "embed", "agreement"),
+        reads_sections=("hashes", "decide"),
+        checks=CHECKS,
+        parallel="inline",
+    )
+)

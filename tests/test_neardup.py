@@ -1,0 +1,268 @@
+"""hashes + neardup stages: public photos and their edited copies, the keeper rule, edge cases."""
+from __future__ import annotations
+
+import collections
+import hashlib
+import random
+import sys
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pytest
+
+from curate import hashing
+from curate.config import DecideConfig, PipelineConfig, load_config
+from curate.errors import ConfigError
+from curate.stages import REGISTRY
+from curate.stages import hashes as hashes_mod
+from curate.stages import neardup
+from curate.stages.base import CHECKS_TYPE, StageContext, check
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "bench"))
+pytest.importorskip("skimage")
+pytest.importorskip("sklearn")
+import photoset  # noqa: E402
+
+
+def _ctx(decide: dict | None = None, **neardup_kw) -> tuple[neardup.NeardupConfig, StageContext]:
+    ncfg = neardup.NeardupConfig(**neardup_kw)
+    cfg = PipelineConfig({"hashes": hashes_mod.HashesConfig(), "neardup": ncfg,
+                          "decide": DecideConfig(actions=decide or {})})
+    return ncfg, StageContext(config=cfg)
+
+
+def _table(rows: list[dict], emb: np.ndarray | None = None) -> pa.Table:
+    """A neardup input table: rows with sample_id, bytes or sha, image or codes, size, checks..."""
+    hcfg = hashes_mod.HashesConfig()
+    col = hashes_mod.codes_column(hcfg)
+    cols = collections.defaultdict(list)
+    for r in rows:
+        cols["sample_id"].append(r["id"])
+        cols["source"].append(r["id"] + ".jpg")
+        cols["decoded"].append(r.get("decoded", True))
+        img = r.get("image")
+        cols["width"].append(r.get("width", img.width if img is not None else 100))
+        cols["height"].append(r.get("height", img.height if img is not None else 100))
+        cols["sha256"].append(r.get("sha") or (hashlib.sha256(r["bytes"]).hexdigest() if "bytes" in r else None))
+        if "codes" in r:
+            cols[col].append(r["codes"])
+        else:
+            cols[col].append(hashes_mod.hash_columns(img, hcfg)[col] if img is not None else None)
+        cols["agreement"].append(r.get("agreement"))
+        cols["inspect.checks"].append(r.get("checks", []))
+    fields = [pa.field("sample_id", pa.string()), pa.field("source", pa.string()), pa.field("decoded", pa.bool_()),
+              pa.field("width", pa.int32()), pa.field("height", pa.int32()), pa.field("sha256", pa.string()),
+              *hashes_mod.hash_fields(hcfg), pa.field("agreement", pa.float32()), pa.field("inspect.checks", CHECKS_TYPE)]
+    t = pa.Table.from_arrays([pa.array(cols[f.name], type=f.type) for f in fields], schema=pa.schema(fields))
+    if emb is not None:
+        t = t.append_column("image_emb", pa.FixedSizeListArray.from_arrays(pa.array(emb.astype(np.float16).ravel()), emb.shape[1]))
+    return t
+
+
+def _by_id(out: pa.Table) -> dict[str, dict]:
+    return {r["sample_id"]: r for r in out.to_pylist()}
+
+
+# ----------------------------------------------------------------------------- public photos
+
+# Photos whose every edit is checked here (the full set runs in bench/neardup_quality.py).
+EDITED = ("astronaut", "coffee", "china", "grace_hopper", "camera")
+
+
+@pytest.fixture(scope="module")
+def photo_rows() -> list[dict]:
+    rows = []
+    for name in photoset.PHOTOS:
+        img = photoset.load_photo(name)
+        data = photoset.original_bytes(img)
+        rows.append({"id": f"{name}/original", "photo": name, "family": "original", "bytes": data,
+                     "image": photoset.decode_like_inspect(data)})
+        if name in EDITED:
+            for fam, edit, data in photoset.variants(name, img):
+                rows.append({"id": f"{name}/{edit}", "photo": name, "family": fam, "bytes": data,
+                             "image": photoset.decode_like_inspect(data)})
+    return rows
+
+
+@pytest.fixture(scope="module")
+def photo_groups(photo_rows) -> dict[str, dict]:
+    ncfg, ctx = _ctx()
+    return _by_id(neardup.run(_table(photo_rows), ncfg, ctx))
+
+
+def test_distinct_public_photos_are_never_grouped(photo_rows, photo_groups):
+    # Public photos from scikit-image, scikit-learn and matplotlib: different pictures, so no group
+    # may hold two of them (the quality target: zero merges), edited copies included.
+    photos_of = collections.defaultdict(set)
+    for r in photo_rows:
+        photos_of[photo_groups[r["id"]]["group_id"]].add(r["photo"])
+    assert all(len(p) == 1 for p in photos_of.values()), [p for p in photos_of.values() if len(p) > 1]
+    originals = [photo_groups[f"{n}/original"]["group_id"] for n in photoset.PHOTOS]
+    assert len(set(originals)) == len(photoset.PHOTOS)
+
+
+@pytest.mark.parametrize("family", list(photoset.TRANSFORMS))
+def test_every_edit_lands_in_its_originals_group(photo_rows, photo_groups, family):
+    # Each transform of the quality target (JPEG quality, rescale, blur, brightness, contrast,
+    # format, border crops up to 8% per side, corner stamps): the copy joins its original's group.
+    for r in photo_rows:
+        if r["family"] == family:
+            g = photo_groups[r["id"]]
+            assert g["group_id"] == photo_groups[f"{r['photo']}/original"]["group_id"], r["id"]
+
+
+def test_plain_phash_misses_crops_and_stamps(photo_rows):
+    # Why the views exist: one whole-picture pHash puts 8% crops and corner stamps far from the
+    # original (Zauner 2010 measured pHash under compression and scaling, not crops).
+    plain = dict(scales=(1.0,), side_scale=0.0, corner_mask=0.0, work_size=0)
+    by = {r["id"]: r for r in photo_rows}
+    d = hashing.min_distance(hashing.image_codes(by["astronaut/crop_even_8"]["image"], **plain),
+                             hashing.image_codes(by["astronaut/original"]["image"], **plain))
+    assert d > neardup.NeardupConfig().radius
+    d_views = hashing.min_distance(hashing.image_codes(by["astronaut/crop_even_8"]["image"]),
+                                   hashing.image_codes(by["astronaut/original"]["image"]))
+    assert d_views <= neardup.NeardupConfig().radius
+
+
+def test_keeper_is_the_largest_copy_and_others_point_to_it(photo_groups):
+    g = photo_groups["astronaut/original"]
+    members = [r for r in photo_groups.values() if r["group_id"] == g["group_id"]]
+    keepers = [r for r in members if r["dup_of"] is None]
+    assert len(keepers) == 1
+    # scale_1.6 is the only copy with more pixels than the original.
+    assert keepers[0]["sample_id"] == "astronaut/scale_1.6" == g["group_id"]
+    for r in members:
+        assert r["group_size"] == len(members)
+        (c,) = r["neardup.checks"]
+        assert c["code"] == "duplicate" and c["failed"] == (r["dup_of"] is not None)
+        if r["dup_of"] is not None:
+            assert r["dup_of"] == keepers[0]["sample_id"] and r["dup_signal"] in ("phash", "sha256")
+            assert keepers[0]["sample_id"] in c["value"]
+
+
+# ----------------------------------------------------------------------------- keeper rule
+
+
+def _codes(seed: int, flips: int = 0, base: int | None = None) -> list[int]:
+    rng = random.Random(seed)
+    b = base if base is not None else rng.getrandbits(64)
+    for _ in range(flips):
+        b ^= 1 << rng.randrange(64)
+    return [b] * hashes_mod.variants(hashes_mod.HashesConfig())
+
+
+def _rule_rows() -> list[dict]:
+    base = 0x0123456789ABCDEF
+    failed = [check("short_side_small", 10, ">=256", True)]
+    return [
+        {"id": "e", "codes": _codes(1, 2, base), "width": 2000, "height": 2000, "agreement": 0.2, "checks": failed},
+        {"id": "b", "codes": _codes(2, 3, base), "width": 800, "height": 600, "agreement": 0.25},
+        {"id": "d", "codes": _codes(3, 1, base), "width": 800, "height": 600, "agreement": 0.31},
+        {"id": "c", "codes": _codes(4, 0, base), "width": 800, "height": 600, "agreement": 0.31},
+        {"id": "a", "codes": _codes(5, 4, base), "width": 640, "height": 480, "agreement": 0.9},
+        {"id": "z", "codes": _codes(99), "width": 10, "height": 10},
+        {"id": "x", "codes": None, "decoded": False, "width": None, "height": None},
+    ]
+
+
+def test_keeper_rule_order_and_determinism():
+    # Rule (documented in neardup): not dropped elsewhere, most pixels, highest agreement, smallest id.
+    rows = _rule_rows()
+    ncfg, ctx = _ctx()
+    out = _by_id(neardup.run(_table(rows), ncfg, ctx))
+    # e has the most pixels but fails an inspect check; b, c, d tie on pixels; c and d tie on
+    # agreement; c has the smaller id.
+    for sid in "abde":
+        assert out[sid]["group_id"] == "c" and out[sid]["dup_of"] == "c"
+    assert out["c"]["dup_of"] is None and out["c"]["group_size"] == 5
+    assert out["z"]["group_id"] == "z" and out["z"]["group_size"] == 1 and out["z"]["dup_of"] is None
+    assert out["x"]["group_id"] is None and out["x"]["neardup.checks"] == []
+    assert out["a"]["dup_signal"] == "phash" and out["a"]["dup_distance"] == 4
+    # Same answer whatever the row order.
+    for seed in range(3):
+        shuffled = rows[:]
+        random.Random(seed).shuffle(shuffled)
+        again = _by_id(neardup.run(_table(shuffled), ncfg, ctx))
+        assert again == out
+    # With the inspect check turned off by [decide], e (most pixels) keeps the group.
+    ncfg, ctx = _ctx(decide={"short_side_small": "keep"})
+    out2 = _by_id(neardup.run(_table(rows), ncfg, ctx))
+    assert out2["c"]["dup_of"] == "e" and out2["e"]["dup_of"] is None
+
+
+def test_exact_bytes_group_without_codes():
+    rows = [{"id": "p", "sha": "aa" * 32, "codes": None}, {"id": "q", "sha": "aa" * 32, "codes": None},
+            {"id": "r", "sha": "bb" * 32, "codes": None}]
+    ncfg, ctx = _ctx()
+    out = _by_id(neardup.run(_table(rows), ncfg, ctx))
+    assert out["q"]["dup_of"] == "p" and out["q"]["dup_signal"] == "sha256" and out["q"]["dup_distance"] == 0
+    assert out["r"]["group_size"] == 1
+
+
+def test_chained_copies_share_one_group():
+    # a-b and b-c within the radius, a-c beyond it: union-find puts all three together.
+    a = 0
+    b = (1 << 8) - 1  # 8 bits from a
+    c = b | (((1 << 8) - 1) << 8)  # 8 bits from b, 16 from a
+    k = hashes_mod.variants(hashes_mod.HashesConfig())
+    rows = [{"id": i, "codes": [v] * k, "width": w, "height": w} for i, v, w in (("a", a, 500), ("b", b, 400), ("c", c, 300))]
+    ncfg, ctx = _ctx()
+    out = _by_id(neardup.run(_table(rows), ncfg, ctx))
+    assert {out[i]["group_id"] for i in "abc"} == {"a"}
+    assert out["c"]["dup_distance"] == 16  # distance to the keeper, past the radius via b
+
+
+def test_semantic_links_need_embeddings_and_the_threshold():
+    rng = np.random.default_rng(0)
+    e = rng.standard_normal((3, 32)).astype(np.float32)
+    e[1] = e[0] + 0.01 * rng.standard_normal(32)
+    e /= np.linalg.norm(e, axis=1, keepdims=True)
+    rows = [{"id": s, "codes": _codes(i)} for i, s in enumerate("uvw")]
+    ncfg, ctx = _ctx()
+    out = _by_id(neardup.run(_table(rows, emb=e), ncfg, ctx))
+    assert out["v"]["dup_of"] == "u" and out["v"]["dup_signal"] == "embedding"
+    assert 0 <= out["v"]["dup_distance"] < 1 - ncfg.cosine + 1e-3
+    assert out["w"]["group_size"] == 1
+    ncfg, ctx = _ctx(semantic=False)
+    out = _by_id(neardup.run(_table(rows, emb=e), ncfg, ctx))
+    assert out["v"]["group_size"] == 1
+
+
+def test_empty_and_all_undecoded():
+    ncfg, ctx = _ctx()
+    out = neardup.run(_table([]), ncfg, ctx)
+    assert out.num_rows == 0 and out.schema == neardup.OUTPUT_SCHEMA
+    rows = [{"id": "x", "codes": None, "decoded": False}]
+    out = neardup.run(_table(rows), ncfg, ctx).to_pylist()
+    assert out[0]["group_id"] is None
+
+
+# ----------------------------------------------------------------------------- contracts
+
+
+def test_registration_and_config():
+    st = REGISTRY["neardup"]
+    assert st.kind == "global" and st.checks[0].code == "duplicate" and st.checks[0].action == "drop"
+    assert "hashes" in st.reads_sections and "decide" in st.reads_sections
+    sections = {"neardup": neardup.NeardupConfig, "hashes": hashes_mod.HashesConfig}
+    cfg = load_config(None, ["neardup.radius=6", "hashes.flip=true"], sections=sections)
+    assert cfg.neardup.radius == 6 and hashes_mod.variants(cfg.hashes) == 14
+    for bad in ("neardup.radius=40", "neardup.cosine=1.5", "hashes.scales=[]", "hashes.corner_mask=0.6"):
+        with pytest.raises(ConfigError):
+            load_config(None, [bad], sections=sections)
+
+
+def test_codes_matrix_handles_nulls_and_slices():
+    hcfg = hashes_mod.HashesConfig()
+    k = hashes_mod.variants(hcfg)
+    (field,) = hashes_mod.hash_fields(hcfg)
+    vals = [[i] * k if i % 3 else None for i in range(10)]
+    arr = pa.array(vals, type=field.type)
+    codes, valid = hashes_mod.codes_matrix(arr.slice(2, 6), k)
+    assert valid.tolist() == [v is not None for v in vals[2:8]]
+    for row, v in zip(codes, vals[2:8]):
+        assert row.tolist() == (v if v is not None else [0] * k)
+    chunked = pa.chunked_array([arr.slice(0, 4), arr.slice(4)])
+    codes2, valid2 = hashes_mod.codes_matrix(chunked, k)
+    assert valid2.sum() == sum(v is not None for v in vals) and codes2[5].tolist() == vals[5]

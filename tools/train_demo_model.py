@@ -1,0 +1,311 @@
+"""Train curate's demo CLIP model on procedurally rendered Kilnworks photos and their captions.
+
+    .venv/bin/python tools/train_demo_model.py            # writes curate/models/demo/clip_demo.*
+
+A small CLIP architecture (an open_clip model config: ViT image tower on 64x64 inputs, causal
+text transformer with open_clip's default BPE tokenizer) trained from scratch with the CLIP
+contrastive loss (open_clip.ClipLoss; Radford et al. 2021) on image-caption pairs drawn by
+sample_corpus/workshop.py. Seeds are fixed and disjoint from the sample corpus's: training scenes
+use random.Random(10_000 + i), calibration scenes random.Random(2_000_000 + i), caption wording
+per step random.Random(5_000_000 + step * batch + j). Same torch version and thread count ->
+same weights.
+
+After training, the agreement threshold is calibrated on held-out scenes: each scene gives one
+true caption and one deliberately mismatched caption (workshop.mismatch: other item, clearly
+different glaze); the threshold maximises Youden's J (true-positive rate minus false-positive
+rate). It goes into the JSON with the measured AUC, for the agreement stage's default table.
+"""
+from __future__ import annotations
+
+import argparse
+import hashlib
+import io
+import json
+import math
+import random
+import sys
+import time
+from multiprocessing import get_context
+from pathlib import Path
+
+import numpy as np
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(ROOT / "sample_corpus"))
+
+import workshop  # noqa: E402
+
+from curate.models import clip as clipmod  # noqa: E402
+
+TRAIN_SEED = 10_000
+CALIB_SEED = 2_000_000
+CAPTION_SEED = 5_000_000
+# Render sizes (width, height): landscape, portrait and square, 1.5-3x the model input, so the
+# resize to 64 px averages pixels the way it does on full-size photos.
+RENDER_SIZES = ((128, 96), (160, 120), (192, 144), (96, 128), (120, 160), (144, 144))
+# Calibration photos have the sizes of a product archive (400-800 px) and go through JPEG and the
+# embed stage's decoder (draft mode included), so the threshold fits what the stage will see.
+CALIB_SIZES = ((640, 480), (480, 640), (512, 512), (600, 400), (400, 600), (576, 432), (768, 576), (448, 448))
+
+MODEL_CFG = {
+    "embed_dim": 128,
+    "vision_cfg": {"image_size": 64, "patch_size": 16, "width": 128, "layers": 4, "head_width": 32,
+                   "mlp_ratio": 4.0},
+    "text_cfg": {"context_length": 77, "vocab_size": 49408, "width": 96, "heads": 3, "layers": 3},
+}
+# OpenAI CLIP's normalisation constants (open_clip.OPENAI_DATASET_MEAN / _STD), bicubic resize of
+# the short side, centre crop: open_clip's defaults.
+PREPROCESS_CFG = {"size": 64, "mean": [0.48145466, 0.4578275, 0.40821073],
+                  "std": [0.26862954, 0.26130258, 0.27577711], "interpolation": "bicubic",
+                  "resize_mode": "shortest"}
+
+
+def render_photo(seed: int) -> tuple[dict, np.ndarray]:
+    """Calibration scene: a full-size JPEG photo decoded by the embed stage's own decoder."""
+    from curate.stages import embed
+
+    rng = random.Random(seed)
+    spec = workshop.random_spec(rng)
+    img = workshop.render(spec, rng.choice(CALIB_SIZES), rng)
+    buf = io.BytesIO()
+    img.save(buf, "JPEG", quality=rng.randint(84, 92))
+    draft = embed.DRAFT_MARGIN * PREPROCESS_CFG["size"]
+    return spec, embed.decode_for_model(buf.getvalue(), _STEPS, draft)
+
+
+def render_one(seed: int) -> tuple[dict, np.ndarray]:
+    """Scene seed -> (spec, uint8 64x64x3 pixels after open_clip's eval resize and crop)."""
+    rng = random.Random(seed)
+    spec = workshop.random_spec(rng)
+    size = rng.choice(RENDER_SIZES)
+    img = workshop.render(spec, size, rng)
+    if rng.random() < 0.5:  # half go through JPEG, like most photo archives
+        buf = io.BytesIO()
+        img.save(buf, "JPEG", quality=rng.randint(70, 95))
+        buf.seek(0)
+        from PIL import Image
+
+        img = Image.open(buf).convert("RGB")
+    for step in _STEPS:
+        img = step(img)
+    return spec, np.asarray(img, dtype=np.uint8)
+
+
+_STEPS: list = []
+
+
+def _init_worker() -> None:
+    import torch
+
+    torch.set_num_threads(1)
+    _STEPS[:] = clipmod.pil_steps(PREPROCESS_CFG)
+
+
+def render_many(first_seed: int, n: int, procs: int, fn=render_one) -> tuple[list[dict], np.ndarray]:
+    seeds = [first_seed + i for i in range(n)]
+    if procs <= 1:
+        _init_worker()
+        out = [fn(s) for s in seeds]
+    else:
+        with get_context("fork").Pool(procs, initializer=_init_worker) as pool:
+            out = pool.map(fn, seeds, chunksize=16)
+    return [o[0] for o in out], np.stack([o[1] for o in out])
+
+
+def to_input(pixels: np.ndarray):
+    import torch
+
+    mean = torch.tensor(PREPROCESS_CFG["mean"]).view(1, 3, 1, 1)
+    std = torch.tensor(PREPROCESS_CFG["std"]).view(1, 3, 1, 1)
+    x = torch.from_numpy(pixels).permute(0, 3, 1, 2).float().div(255)
+    return (x - mean) / std
+
+
+def encode_text(model, tokenizer, texts: list[str]):
+    """Trimmed text forward pass (same code path the embed stage uses)."""
+    import torch.nn.functional as F
+
+    tokens = tokenizer(texts)
+    tokens = tokens[:, : int(clipmod.token_lengths(tokens).max())]
+    return F.normalize(clipmod._encode_text_trimmed(model, tokens), dim=-1)
+
+
+def auc(pos: np.ndarray, neg: np.ndarray) -> float:
+    """ROC AUC as the Mann-Whitney U statistic over all (pos, neg) pairs, ties counted half."""
+    from scipy.stats import rankdata
+
+    ranks = rankdata(np.concatenate([pos, neg]))
+    u = ranks[: len(pos)].sum() - len(pos) * (len(pos) + 1) / 2
+    return float(u / (len(pos) * len(neg)))
+
+
+def youden_threshold(pos: np.ndarray, neg: np.ndarray) -> tuple[float, float, float]:
+    """Threshold t (keep when score >= t) maximising TPR - FPR; midpoint between neighbours."""
+    scores = np.unique(np.concatenate([pos, neg]))
+    cands = np.concatenate([[scores[0] - 1e-6], (scores[:-1] + scores[1:]) / 2, [scores[-1] + 1e-6]])
+    tpr = (pos[None, :] >= cands[:, None]).mean(axis=1)
+    fpr = (neg[None, :] >= cands[:, None]).mean(axis=1)
+    best = int(np.argmax(tpr - fpr))
+    return float(cands[best]), float(tpr[best]), float(fpr[best])
+
+
+def calibrate(model, tokenizer, n: int, procs: int) -> dict:
+    import torch
+    import torch.nn.functional as F
+
+    specs, pixels = render_many(CALIB_SEED, n, procs, fn=render_photo)
+    true_caps, false_caps = [], []
+    for i, spec in enumerate(specs):
+        rng = random.Random(CALIB_SEED + 7_000_000 + i)
+        true_caps.append(workshop.describe(spec, rng))
+        false_caps.append(workshop.describe(workshop.mismatch(spec, rng), rng))
+    model.eval()
+    with torch.inference_mode():
+        img = torch.cat([F.normalize(model.encode_image(to_input(pixels[i:i + 256])), dim=-1)
+                         for i in range(0, n, 256)])
+        t_true = torch.cat([encode_text(model, tokenizer, true_caps[i:i + 256]) for i in range(0, n, 256)])
+        t_false = torch.cat([encode_text(model, tokenizer, false_caps[i:i + 256]) for i in range(0, n, 256)])
+    pos = (img * t_true).sum(-1).numpy().astype(np.float64)
+    neg = (img * t_false).sum(-1).numpy().astype(np.float64)
+    thr, tpr, fpr = youden_threshold(pos, neg)
+    return {
+        "threshold": round(thr, 3),
+        "auc": round(auc(pos, neg), 4),
+        "tpr": round(tpr, 4),
+        "fpr": round(fpr, 4),
+        "n_scenes": n,
+        "true_cos_median": round(float(np.median(pos)), 4),
+        "mismatched_cos_median": round(float(np.median(neg)), 4),
+        "method": (
+            f"{n} held-out scenes rendered by sample_corpus/workshop.py with seeds {CALIB_SEED}.."
+            f"{CALIB_SEED + n - 1} (disjoint from training and from the sample corpus) as 400-800 px JPEGs "
+            "decoded by the embed stage; each scene scored "
+            "with its true caption and with a caption of workshop.mismatch(spec); threshold = the cosine "
+            "that maximises Youden's J (TPR - FPR), keeping pairs with cosine >= threshold"
+        ),
+    }
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    ap.add_argument("--out", default=str(ROOT / "curate" / "models" / "demo"), help="output folder")
+    ap.add_argument("--scenes", type=int, default=12_000, help="distinct training scenes to render")
+    ap.add_argument("--steps", type=int, default=600, help="optimiser steps")
+    ap.add_argument("--batch", type=int, default=256, help="pairs per step (in-batch negatives)")
+    ap.add_argument("--lr", type=float, default=1e-3, help="peak AdamW learning rate")
+    ap.add_argument("--threads", type=int, default=2, help="torch threads and render processes")
+    ap.add_argument("--calib-scenes", type=int, default=2_000, help="held-out scenes for calibration")
+    ap.add_argument("--calibrate-only", action="store_true",
+                    help="keep the weights in --out, redo the calibration and update the JSON")
+    args = ap.parse_args(argv)
+    if args.calibrate_only:
+        return recalibrate(Path(args.out), args)
+
+    import open_clip
+    import torch
+    from safetensors.torch import save_file
+
+    torch.set_num_threads(args.threads)
+    torch.manual_seed(0)
+    t0 = time.time()
+    specs, pixels = render_many(TRAIN_SEED, args.scenes, args.threads)
+    t_render = time.time() - t0
+    print(f"rendered {len(specs)} scenes in {t_render:.0f} s", flush=True)
+
+    data = {"model_cfg": MODEL_CFG, "preprocess_cfg": PREPROCESS_CFG}
+    model = clipmod.build_from_config(data)
+    tokenizer = open_clip.SimpleTokenizer(context_length=MODEL_CFG["text_cfg"]["context_length"])
+    loss_fn = open_clip.ClipLoss()
+    # Weight decay on matrices only (common practice for transformers; open_clip's training does
+    # the same); token and position embeddings, gains, biases and the temperature are not decayed.
+    decay, no_decay = [], []
+    for name, p in model.named_parameters():
+        skip = p.ndim < 2 or "embedding" in name or "logit_scale" in name or name.endswith("class_embedding")
+        (no_decay if skip else decay).append(p)
+    # betas and eps from the CLIP paper (Radford et al. 2021, Table 19 / sec. 2.5).
+    opt = torch.optim.AdamW([{"params": decay, "weight_decay": 0.1}, {"params": no_decay, "weight_decay": 0.0}],
+                            lr=args.lr, betas=(0.9, 0.98), eps=1e-6)
+    warmup = max(1, args.steps // 15)
+
+    def lr_at(step: int) -> float:  # linear warm-up, then cosine decay to zero (common practice)
+        if step < warmup:
+            return args.lr * (step + 1) / warmup
+        return args.lr * 0.5 * (1 + math.cos(math.pi * (step - warmup) / max(1, args.steps - warmup)))
+
+    gen = torch.Generator().manual_seed(1)
+    order = torch.randperm(len(specs), generator=gen)
+    pos = 0
+    model.train()
+    t1 = time.time()
+    for step in range(args.steps):
+        if pos + args.batch > len(order):
+            order, pos = torch.randperm(len(specs), generator=gen), 0
+        idx = order[pos:pos + args.batch].numpy()
+        pos += args.batch
+        caps = [workshop.describe(specs[i], random.Random(CAPTION_SEED + step * args.batch + j))
+                for j, i in enumerate(idx)]
+        for g in opt.param_groups:
+            g["lr"] = lr_at(step)
+        img = torch.nn.functional.normalize(model.encode_image(to_input(pixels[idx])), dim=-1)
+        txt = encode_text(model, tokenizer, caps)
+        loss = loss_fn(img, txt, model.logit_scale.exp())
+        opt.zero_grad(set_to_none=True)
+        loss.backward()
+        opt.step()
+        with torch.no_grad():
+            model.logit_scale.clamp_(0, math.log(100))  # CLIP paper: temperature clipped at 100
+        if step % 25 == 0 or step == args.steps - 1:
+            print(f"step {step:4d}  loss {loss.item():.4f}  scale {model.logit_scale.exp().item():.1f}  "
+                  f"{time.time() - t1:.0f} s", flush=True)
+    t_train = time.time() - t1
+
+    cal = calibrate(model, tokenizer, args.calib_scenes, args.threads)
+    print(f"calibration: {json.dumps(cal)}", flush=True)
+
+    out = Path(args.out)
+    out.mkdir(parents=True, exist_ok=True)
+    weights = out / clipmod.DEMO_WEIGHTS.name
+    state = {k: v.detach().to(torch.float16).contiguous() for k, v in model.state_dict().items()}
+    save_file(state, str(weights), metadata={"format": "pt", "producer": "tools/train_demo_model.py"})
+    sha = hashlib.sha256(weights.read_bytes()).hexdigest()
+    meta = {
+        "model_cfg": MODEL_CFG,
+        "preprocess_cfg": PREPROCESS_CFG,
+        "weights": weights.name,
+        "weights_sha256": sha,
+        "calibration": cal,
+        "training": {
+            "script": "tools/train_demo_model.py",
+            "loss": "CLIP contrastive loss (open_clip.ClipLoss), learnable temperature",
+            "scenes": args.scenes, "steps": args.steps, "batch": args.batch, "lr": args.lr,
+            "threads": args.threads, "seeds": {"train": TRAIN_SEED, "calibration": CALIB_SEED,
+                                               "captions": CAPTION_SEED, "torch": 0},
+            "render_seconds": round(t_render, 1), "train_seconds": round(t_train, 1),
+            "torch": torch.__version__, "open_clip": open_clip.__version__,
+            "weights_dtype": "float16", "final_loss": round(float(loss.item()), 4),
+        },
+    }
+    (out / clipmod.DEMO_CONFIG.name).write_text(json.dumps(meta, indent=2) + "\n", encoding="utf-8")
+    print(f"wrote {weights} ({weights.stat().st_size / 1e6:.1f} MB) in {time.time() - t0:.0f} s total", flush=True)
+    return 0
+
+
+def recalibrate(out: Path, args: argparse.Namespace) -> int:
+    import open_clip
+    import torch
+
+    torch.set_num_threads(args.threads)
+    cfg_path = out / clipmod.DEMO_CONFIG.name
+    meta = json.loads(cfg_path.read_text(encoding="utf-8"))
+    model = clipmod.build_from_config(meta)
+    clipmod.load_weights(model, str(out / clipmod.DEMO_WEIGHTS.name), "the demo architecture")
+    tokenizer = open_clip.SimpleTokenizer(context_length=meta["model_cfg"]["text_cfg"]["context_length"])
+    meta["calibration"] = calibrate(model, tokenizer, args.calib_scenes, args.threads)
+    print(f"calibration: {json.dumps(meta['calibration'])}", flush=True)
+    cfg_path.write_text(json.dumps(meta, indent=2) + "\n", encoding="utf-8")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
