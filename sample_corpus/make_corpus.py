@@ -21,11 +21,11 @@ import warnings
 from dataclasses import dataclass
 from pathlib import Path
 
-import imagehash
 from PIL import Image, ImageDraw, ImageFilter, ImageFont, ImageOps
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 import workshop  # noqa: E402
+from curate.hashing import min_distance  # noqa: E402
 
 HERE = Path(__file__).resolve().parent
 MARKER = ".kilnworks-corpus"  # lets a re-run clear a folder this script made, and nothing else
@@ -39,14 +39,16 @@ ORIGINAL_SIZES = ((800, 600), (600, 800), (768, 576), (720, 720), (800, 640), (6
 
 CSV_FIELDS = ("source", "expect", "reason", "group", "width", "height", "note")
 
-# Distinct scenes are re-drawn until their 64-bit pHash (imagehash) is more than this many bits
+# Distinct scenes are re-drawn until their perceptual codes (the pipeline's own multi-view pHash,
+# curate.hashing with the default [hashes] settings, closest views) are at least this many bits
 # from every scene drawn before, so no two unrelated samples look like near-duplicates.
-# Common practice: up to about 10 bits marks a likely variant (see shared FACTS).
+# Common practice: up to about 10 bits marks a likely variant (see shared FACTS); the default
+# neardup radius is 8.
 MIN_DISTINCT_BITS = 13
 # After the build, no two samples outside one duplicate group may be this close.
 MAX_VARIANT_BITS = 10
-# Every planted near-duplicate stays within this many bits of its original.
-CLOSE_VARIANT_BITS = 6
+# Every planted near-duplicate stays within this many bits of its original (the neardup radius).
+CLOSE_VARIANT_BITS = 8
 
 
 @dataclass
@@ -133,8 +135,8 @@ class Corpus:
             r = random.Random(self.rng.getrandbits(64))
             spec = workshop.random_spec(r)
             img = workshop.render(spec, size or r.choice(GOOD_SIZES), r)
-            h = imagehash.phash(img)
-            if all(h - other >= MIN_DISTINCT_BITS for other in self.scene_hashes):
+            h = codes(img)
+            if all(min_distance(h, other) >= MIN_DISTINCT_BITS for other in self.scene_hashes):
                 self.scene_hashes.append(h)
                 return spec, img, r
         raise RuntimeError("could not draw a scene distinct from the others")
@@ -208,7 +210,7 @@ class Corpus:
             for kind in kinds:
                 for _ in range(20):  # a crop can move the hash a lot: keep one that stays close
                     variant, data, ext, note = self.variant(img, kind, r)
-                    if decoded_hash(data) - original <= CLOSE_VARIANT_BITS:
+                    if min_distance(decoded_hash(data), original) <= CLOSE_VARIANT_BITS:
                         break
                 else:
                     raise RuntimeError(f"no {kind} variant within {CLOSE_VARIANT_BITS} bits")
@@ -543,6 +545,14 @@ def build() -> list[Sample]:
     return c.samples
 
 
+def codes(img: Image.Image):
+    """The pipeline's own perceptual codes of an image (default [hashes] settings)."""
+    from curate.stages.hashes import HashesConfig, codes_column, hash_columns
+
+    cfg = HashesConfig()
+    return hash_columns(img, cfg)[codes_column(cfg)]
+
+
 def decoded_hash(data: bytes):
     """pHash of the image as displayed, or None when it does not decode or is huge."""
     with warnings.catch_warnings():
@@ -551,7 +561,7 @@ def decoded_hash(data: bytes):
             with Image.open(io.BytesIO(data)) as im:
                 if im.width * im.height > 50_000_000:
                     return None
-                return imagehash.phash(ImageOps.exif_transpose(im).convert("RGB"))
+                return codes(ImageOps.exif_transpose(im).convert("RGB"))
         except Exception:  # broken files are planted on purpose; they have no hash
             return None
 
@@ -563,7 +573,7 @@ def check_hashes(samples: list[Sample]) -> None:
     for i, s in enumerate(samples):
         if s.group:
             if s.group in first:
-                d = hashes[i] - hashes[first[s.group]]
+                d = min_distance(hashes[i], hashes[first[s.group]])
                 s.note += f" (pHash distance {d} to {samples[first[s.group]].path})"
             else:
                 first[s.group] = i
@@ -572,8 +582,8 @@ def check_hashes(samples: list[Sample]) -> None:
             b = samples[j]
             if hashes[i] is None or hashes[j] is None or (a.group and a.group == b.group):
                 continue
-            if hashes[i] - hashes[j] <= MAX_VARIANT_BITS:
-                raise RuntimeError(f"{a.path} and {b.path} are {hashes[i] - hashes[j]} bits apart "
+            if min_distance(hashes[i], hashes[j]) <= MAX_VARIANT_BITS:
+                raise RuntimeError(f"{a.path} and {b.path} are {min_distance(hashes[i], hashes[j])} bits apart "
                                    "but are not planted duplicates; change SEED")
 
 

@@ -126,14 +126,14 @@ def test_lock_blocks_a_second_live_run_and_clears_a_stale_one(tmp_path):
     out.mkdir()
     import socket
 
-    sleeper = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(60)"])
-    try:
-        (out / ".curate.lock").write_text(json.dumps({"host": socket.gethostname(), "pid": sleeper.pid}))
-        with pytest.raises(LockedError):
-            _run(corpus, out)
-    finally:
-        sleeper.kill()
-        sleeper.wait()
+    # A live holder: this very process (another run on this host that is still going).
+    (out / ".curate.lock").write_text(json.dumps({"host": socket.gethostname(), "pid": os.getpid()}))
+    with pytest.raises(LockedError):
+        _run(corpus, out)
+    # A dead holder: a process that has exited and been reaped, as a SIGKILLed run leaves it.
+    gone = subprocess.Popen(["true"])
+    gone.wait()
+    (out / ".curate.lock").write_text(json.dumps({"host": socket.gethostname(), "pid": gone.pid}))
     # the holder is gone: the lock is stale, cleared, and the run goes on
     res = _run(corpus, out)
     assert res.cleared_stale_lock and not (out / ".curate.lock").exists()

@@ -261,6 +261,20 @@ def run(table: pa.Table, cfg: InspectConfig, ctx: StageContext) -> pa.Table:
     return pa.Table.from_arrays(arrays, names=names)
 
 
+def identity(cfg: Any) -> dict:
+    """Library versions that change this stage's output: the decoder and the hash code."""
+    import PIL
+
+    out = {"pillow": PIL.__version__}
+    if getattr(cfg.hashes, "enabled", False):
+        import imagehash
+
+        from . import hashes
+
+        out.update({"hashes_version": hashes.VERSION, "imagehash": imagehash.__version__})
+    return out
+
+
 register(
     Stage(
         name=NAME,
@@ -271,5 +285,6 @@ register(
         inputs=(),
         reads_sections=("hashes",),
         checks=CHECKS,
+        identity=identity,
     )
 )

@@ -20,7 +20,6 @@ from __future__ import annotations
 import logging
 import os
 from dataclasses import dataclass
-from typing import Any
 
 import numpy as np
 import pyarrow as pa
