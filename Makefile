@@ -16,7 +16,7 @@ demo: $(BIN)/curate
 	$(BIN)/curate run sample_corpus/curate.toml --out demo_out
 
 test: $(BIN)/curate
-	$(BIN)/python -m pytest -q -x -p no:cacheprovider
+	$(BIN)/python -m pytest -q -p no:cacheprovider
 
 test-all: $(BIN)/curate
 	$(BIN)/python -m pytest -q -m '' -p no:cacheprovider

@@ -53,3 +53,10 @@ def make_small_corpus(root: Path, n: int = 40, seed: int = 0) -> Path:
             f"a {colours[i % len(colours)]} {items[i % len(items)]} number {i} on a table", encoding="utf-8"
         )
     return root
+
+
+# Property tests explore the same examples on every run, so CI results do not depend on luck.
+from hypothesis import settings as _hyp_settings  # noqa: E402
+
+_hyp_settings.register_profile("curate", derandomize=True, deadline=None)
+_hyp_settings.load_profile("curate")

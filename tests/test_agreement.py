@@ -126,7 +126,7 @@ def test_unknown_model_needs_threshold_or_percentile():
 
 def test_default_table_and_demo_calibration():
     assert agreement.default_threshold("ViT-B-32", "openai")[0] == 0.28  # LAION-5B sec. 3.1
-    thr, source = agreement.default_threshold("demo", "")
+    thr, source = agreement.default_threshold("demo", "openai")  # a tag does not apply to the demo
     assert -1.0 < thr < 1.0 and "Youden" in source
     ident = agreement.identity(_ctx("embed.model=demo", "embed.pretrained=").config)
     assert ident["threshold"] == thr

@@ -126,6 +126,10 @@ def test_resolve_errors_are_model_errors(tmp_path):
         clipmod.resolve("ViT-B-32", str(tmp_path / "weights.ckpt"))
     assert clipmod.resolve("ViT-B-32", "openai").kind == "tag"
     assert clipmod.resolve("demo").kind == "demo"
+    # A tag (the config default "openai") does not apply to the demo; a checkpoint path replaces its weights.
+    assert clipmod.resolve("demo", "openai").weights_path == str(clipmod.DEMO_WEIGHTS)
+    with pytest.raises(ModelError, match="not found"):
+        clipmod.resolve("demo", str(tmp_path / "retrained.safetensors"))
 
 
 def test_offline_and_not_cached_gives_one_clear_error(tmp_path):

@@ -267,7 +267,8 @@ def main(argv: list[str] | None = None) -> int:
     out.mkdir(parents=True, exist_ok=True)
     weights = out / clipmod.DEMO_WEIGHTS.name
     state = {k: v.detach().to(torch.float16).contiguous() for k, v in model.state_dict().items()}
-    save_file(state, str(weights), metadata={"format": "pt", "producer": "tools/train_demo_model.py"})
+    # One metadata key only: safetensors writes a multi-key metadata map in no fixed order.
+    save_file(state, str(weights), metadata={"format": "pt"})
     sha = hashlib.sha256(weights.read_bytes()).hexdigest()
     meta = {
         "model_cfg": MODEL_CFG,

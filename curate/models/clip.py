@@ -59,9 +59,12 @@ def resolve(model: str, pretrained: str = "") -> ModelRef:
         raise ModelError("embed.model is empty: give an open_clip architecture name (e.g. ViT-B-32), "
                          "'demo', or a model config .json path")
     if model == DEMO_NAME:
-        weights = pretrained if pretrained and pretrained != DEMO_NAME else str(DEMO_WEIGHTS)
+        # The demo has one set of weights; a checkpoint path replaces them (e.g. a retrained demo),
+        # a tag such as the default "openai" does not apply to it.
+        own = Path(pretrained).suffix.lower() in CHECKPOINT_SUFFIXES
+        weights = pretrained if own else str(DEMO_WEIGHTS)
         _require_checkpoint(weights)
-        return ModelRef(model, pretrained, "demo", None, str(DEMO_CONFIG), weights)
+        return ModelRef(model, pretrained if own else DEMO_NAME, "demo", None, str(DEMO_CONFIG), weights)
     if model.lower().endswith(".json"):
         if not Path(model).is_file():
             raise ModelError(f"model config file not found: {model}")
@@ -108,11 +111,13 @@ def _require_checkpoint(path: str) -> None:
 
 def offline_message(ref: ModelRef, cause: BaseException | str, cache_dir: str | None) -> str:
     """The one message for 'cannot fetch pretrained weights' (usually: offline and not cached)."""
-    where = cache_dir or f"the Hugging Face hub cache ($HF_HUB_CACHE, default $HF_HOME/hub, default " \
-                         f"~/.cache/huggingface/hub; weights fetched by URL go to {URL_CACHE})"
+    where = cache_dir or ("the Hugging Face hub cache ($HF_HUB_CACHE, default $HF_HOME/hub, default "
+                          f"~/.cache/huggingface/hub; weights fetched by URL go to {URL_CACHE})")
+    text = str(cause).strip()
+    why = text.splitlines()[0][:200] if text else type(cause).__name__
     return (
         f"cannot get pretrained weights {ref.arch}/{ref.pretrained}: they are not in the local cache and "
-        f"the download failed ({str(cause).strip().splitlines()[0][:200] if str(cause).strip() else type(cause).__name__}). "
+        f"the download failed ({why}). "
         f"open_clip downloads them once into {where}. Either run once with internet access "
         f"(the cache location follows {', '.join(CACHE_ENV_VARS[1:])}; set HF_HUB_OFFLINE=1 afterwards to "
         "stay offline), or download the checkpoint elsewhere and set embed.pretrained to its local path "
@@ -158,7 +163,7 @@ def identity(model: str, pretrained: str = "", cache_dir: str | None = None) -> 
     path = weights_file(ref, cache_dir)
     return {
         "model": ref.model,
-        "pretrained": ref.pretrained or (DEMO_NAME if ref.kind == "demo" else ""),
+        "pretrained": ref.pretrained,
         "weights_file": Path(path).name,
         "weights_sha256": file_sha256(path),
     }
@@ -491,7 +496,8 @@ def load_model(model: str, pretrained: str = "", *, device: str = "auto", cache_
                 # attribute for int8 layers (their `weight` is a method, not a tensor).
                 mod.int8_original_dtype = torch.float32
     net = net.to(dev)
-    lm = LoadedModel(ref=ref, model=net, tokenizer=tokenizer, preprocess_cfg=dict(open_clip.get_model_preprocess_cfg(net)),
+    lm = LoadedModel(ref=ref, model=net, tokenizer=tokenizer,
+                     preprocess_cfg=dict(open_clip.get_model_preprocess_cfg(net)),
                      weights_sha256=sha, device=dev, quantized=bool(quantize))
     lm.trim_text = trimming_is_exact(lm)
     _MODEL_CACHE.clear()

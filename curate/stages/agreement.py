@@ -74,7 +74,7 @@ def default_threshold(model: str, pretrained: str) -> tuple[float, str]:
     """The absolute-mode default for a model, with its source; ConfigError when there is none."""
     from ..models import clip as clipmod
 
-    if model == clipmod.DEMO_NAME:
+    if model == clipmod.DEMO_NAME and clipmod.resolve(model, pretrained).weights_path == str(clipmod.DEMO_WEIGHTS):
         cal = clipmod.demo_calibration()
         return float(cal["threshold"]), "demo model calibration (curate/models/demo/clip_demo.json): " + cal["method"]
     if (model, pretrained) in DEFAULT_THRESHOLDS:

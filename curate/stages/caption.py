@@ -99,10 +99,15 @@ def normalize(text: str) -> str:
     """ftfy repair, NFC, control characters removed, whitespace collapsed."""
     import ftfy
 
-    text = ftfy.fix_text(text, normalization="NFC")
-    text = unicodedata.normalize("NFC", text)
-    text = _CONTROL.sub(" ", text)
-    return _SPACE.sub(" ", text).strip()
+    for _ in range(3):  # ftfy repairs one layer of mojibake at a time; stop at a fixed point
+        before = text
+        text = _CONTROL.sub(" ", text)
+        text = ftfy.fix_text(text, normalization="NFC")
+        text = unicodedata.normalize("NFC", _CONTROL.sub(" ", text))
+        text = _SPACE.sub(" ", text).strip()
+        if text == before:
+            break
+    return text
 
 
 def caption_key(text: str) -> str:

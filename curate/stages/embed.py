@@ -33,7 +33,8 @@ class EmbedConfig:
     # or the path of an open_clip model config .json. ViT-B/32 is the model LAION-400M/5B filtered with.
     model: str = "ViT-B-32"
     # A pretrained tag of `model` (downloaded once into the standard cache; "openai" = OpenAI's
-    # CLIP weights, the ones LAION's thresholds were set with) or a local checkpoint path.
+    # CLIP weights, the ones LAION's thresholds were set with) or a local checkpoint path. With
+    # model = "demo" only a checkpoint path counts (it replaces the shipped demo weights).
     pretrained: str = "openai"
     # Images or captions per forward pass (common practice; 32-64 measured best on 2 CPU cores).
     batch_size: int = 64
