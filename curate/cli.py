@@ -27,10 +27,11 @@ def _cmd_run(a: argparse.Namespace) -> int:
         return 0
     print(f"curate {__version__}: {res.samples} samples in {res.shards} shard(s)")
     for stage in res.seconds:
-        if stage == "list":
+        if stage in ("list", "pack"):
             continue
         ran, reused = res.ran.get(stage, 0), res.reused.get(stage, 0)
-        print(f"  {stage:<16} {res.seconds[stage]:7.2f}s  computed {ran}, reused {reused}")
+        print(f"  {stage:<16} {res.seconds[stage]:7.2f}s  computed {ran}, reused {reused} shard(s)")
+    print(f"  {'outputs':<16} {res.seconds.get('pack', 0.0):7.2f}s  ledger, shards, manifest, summary, report")
     print(f"kept {summary['kept']} of {summary['samples']} ({100 * summary['kept_fraction']:.1f}%)")
     if summary["by_reason"]:
         print("drops by reason (a sample may have several):")
