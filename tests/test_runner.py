@@ -143,6 +143,22 @@ def _cli(*args, **kw):
     return subprocess.Popen([str(ROOT / ".venv" / "bin" / "curate"), *args], **kw)
 
 
+def _orphan_workers() -> list[int]:
+    """Our forkservers/workers whose run is gone (re-parented to init)."""
+    found = []
+    for d in Path("/proc").iterdir():
+        if not d.name.isdigit():
+            continue
+        try:
+            cmd = (d / "cmdline").read_bytes()
+            ppid = int((d / "stat").read_text().rsplit(")", 1)[1].split()[1])
+        except (OSError, ValueError, IndexError):
+            continue
+        if b"multiprocessing.forkserver" in cmd and b"curate" in cmd and ppid == 1:
+            found.append(int(d.name))
+    return found
+
+
 def test_sigkill_at_any_moment_then_resume_gives_the_same_outputs(tmp_path):
     corpus = make_small_corpus(tmp_path / "c", 60)
     sets = []
@@ -159,6 +175,8 @@ def test_sigkill_at_any_moment_then_resume_gives_the_same_outputs(tmp_path):
         time.sleep(delay)
         os.kill(p.pid, signal.SIGKILL)
         p.wait()
+    time.sleep(1.0)
+    assert not _orphan_workers(), "a killed run left worker processes behind"
     assert _cli("run", "--input", str(corpus), "--out", str(out), "--quiet", *sets).wait() == 0
     got = _snapshot(out)
     assert got[0].equals(want[0])

@@ -24,9 +24,12 @@ class LocalEngine:
 
     def _get_pool(self) -> ProcessPoolExecutor:
         if self._pool is None:
+            from ._lifeline import die_with_parent
+
             ctx = mp.get_context("forkserver")
-            ctx.set_forkserver_preload(["curate.stages", "curate.runner"])
-            self._pool = ProcessPoolExecutor(max_workers=self.workers, mp_context=ctx)
+            ctx.set_forkserver_preload(["curate.engines._forkserver_init", "curate.stages", "curate.runner"])
+            self._pool = ProcessPoolExecutor(max_workers=self.workers, mp_context=ctx,
+                                             initializer=die_with_parent)
         return self._pool
 
     def map_tasks(self, tasks: list[Any], sizes: list[int]) -> Iterator[int]:
