@@ -60,3 +60,22 @@ from hypothesis import settings as _hyp_settings  # noqa: E402
 
 _hyp_settings.register_profile("curate", derandomize=True, deadline=None)
 _hyp_settings.load_profile("curate")
+
+
+def scene_photo(seed: int, size=(320, 240)):
+    """One Kilnworks scene drawn by the demo renderer (demo data, for set-level tests)."""
+    import random
+
+    sys.path.insert(0, str(ROOT / "sample_corpus"))
+    import workshop
+
+    rng = random.Random(seed)
+    return workshop.render(workshop.random_spec(rng), size, rng)
+
+
+def to_jpeg(img, quality=90) -> bytes:
+    import io
+
+    buf = io.BytesIO()
+    img.save(buf, "JPEG", quality=quality)
+    return buf.getvalue()

@@ -2,6 +2,8 @@
 set, the CLI contract (exit 1 on leaks, --json), the HTML page, and a run's own train/eval split."""
 from __future__ import annotations
 
+from conftest import scene_photo, to_jpeg
+
 import io
 import json
 import random
@@ -84,15 +86,8 @@ def test_cross_cosine_equals_scikit_learn():
 # --------------------------------------------------------------------------- planted images
 
 
-def _photo(seed: int, size=(320, 240)):
-    rng = random.Random(seed)
-    return workshop.render(workshop.random_spec(rng), size, rng)
-
-
-def _jpeg(img, quality=90) -> bytes:
-    buf = io.BytesIO()
-    img.save(buf, "JPEG", quality=quality)
-    return buf.getvalue()
+_photo = scene_photo
+_jpeg = to_jpeg
 
 
 def _centre(img, scale):

@@ -2,6 +2,8 @@
 target, and decontamination drops training candidates that near-duplicate an outside eval set."""
 from __future__ import annotations
 
+from conftest import scene_photo, to_jpeg
+
 import io
 import json
 import math
@@ -176,6 +178,7 @@ def test_stratify_by_manifest_column():
 
 _DETERMINISM = """
 import sys, json
+sys.path.insert(0, "tests")
 import curate.stages
 from tests.test_split import _table, _run
 groups = [f"g{i % 97}" for i in range(500)]
@@ -201,15 +204,8 @@ def test_same_input_and_seed_give_same_split_across_processes():
 # --------------------------------------------------------------------------- decontamination
 
 
-def _photo(seed: int, size=(320, 240)):
-    rng = random.Random(seed)
-    return workshop.render(workshop.random_spec(rng), size, rng)
-
-
-def _jpeg(img, quality=90) -> bytes:
-    buf = io.BytesIO()
-    img.save(buf, "JPEG", quality=quality)
-    return buf.getvalue()
+_photo = scene_photo
+_jpeg = to_jpeg
 
 
 @pytest.fixture(scope="module")
@@ -351,8 +347,10 @@ def test_semantic_decontamination_finds_a_mirrored_copy(planted, tmp_path):
         pytest.skip("the demo CLIP model or the embed stage is not in this checkout")
     bench = tmp_path / "bench"
     bench.mkdir()
+    # Measured with the shipped demo model: a scene and its mirror image reach cosine 0.91-0.99
+    # (0.92 for this one); no other planted photo comes within 0.9 of the mirrored copy (asserted below).
     ImageOps.mirror(_photo(106)).save(bench / "mirrored_p06.jpg", quality=90)
-    sets = [f'split.eval_sets=["{bench}"]', "split.eval_semantic_cosine=0.95", "inspect.min_short_side=100",
+    sets = [f'split.eval_sets=["{bench}"]', "split.eval_semantic_cosine=0.9", "inspect.min_short_side=100",
             "inspect.min_file_bytes=0", 'embed.model="demo"', 'embed.pretrained=""', "hashes.flip=false"]
     sets += ["agreement.enabled=false"] if "agreement" in config_sections() else []
     out = tmp_path / "out"
