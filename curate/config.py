@@ -121,10 +121,31 @@ def load_config(
             f"unknown section; expected one of: {', '.join(sorted(all_sections))}", file=fname, key=unknown[0]
         )
     cfg = PipelineConfig(built, origin=fname)
-    if fname and cfg.input.path and not Path(cfg.input.path).is_absolute():
-        # Relative input paths in a file are relative to that file.
-        cfg.input.path = str((Path(fname).parent / cfg.input.path).resolve())
+    if fname:
+        _resolve_paths(cfg, data, Path(fname).parent)
     return cfg
+
+
+def _resolve_paths(cfg: PipelineConfig, data: dict, base: Path) -> None:
+    """Relative paths written in a config file are relative to that file.
+
+    Path fields are `input.path` and any dataclass field with metadata {"path": True}; a value that
+    is not an existing path there (e.g. a pretrained tag like "openai") is left as written.
+    """
+    if cfg.input.path and not Path(cfg.input.path).is_absolute():
+        cfg.input.path = str((base / cfg.input.path).resolve())
+    for name in cfg.names():
+        obj = cfg.section(name)
+        for f in dataclasses.fields(obj):
+            if not f.metadata.get("path") or f.name not in data.get(name, {}):
+                continue
+            value = getattr(obj, f.name)
+
+            def fix(v: str) -> str:
+                p = base / v
+                return str(p.resolve()) if v and not Path(v).is_absolute() and p.exists() else v
+
+            setattr(obj, f.name, [fix(v) for v in value] if isinstance(value, list) else fix(value))
 
 
 def _apply_set(data: dict, item: str) -> None:

@@ -77,3 +77,16 @@ def test_pipelines_folder_matches_init(tmp_path, preset):
     committed = Path(__file__).resolve().parents[1] / "pipelines" / f"{preset}.toml"
     fresh = api.init(tmp_path / "c.toml", preset=preset)
     assert committed.read_text() == fresh.read_text(), "regenerate with: curate init --force --preset ..."
+
+
+def test_path_keys_are_relative_to_the_config_file(tmp_path):
+    (tmp_path / "conf" / "ckpt").mkdir(parents=True)
+    (tmp_path / "conf" / "ckpt" / "w.safetensors").write_bytes(b"")
+    (tmp_path / "conf" / "bench").mkdir()
+    f = tmp_path / "conf" / "c.toml"
+    f.write_text('[embed]\npretrained = "ckpt/w.safetensors"\n[split]\neval_sets = ["bench"]\n')
+    cfg = load_config(f, [], config_sections())
+    assert cfg.embed.pretrained == str(tmp_path / "conf" / "ckpt" / "w.safetensors")
+    assert cfg.split.eval_sets == [str(tmp_path / "conf" / "bench")]
+    f.write_text('[embed]\npretrained = "openai"\n')  # a tag, not a path: left as written
+    assert load_config(f, [], config_sections()).embed.pretrained == "openai"

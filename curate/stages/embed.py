@@ -13,7 +13,7 @@ import io
 import logging
 import math
 import os
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
@@ -35,7 +35,7 @@ class EmbedConfig:
     # A pretrained tag of `model` (downloaded once into the standard cache; "openai" = OpenAI's
     # CLIP weights, the ones LAION's thresholds were set with) or a local checkpoint path. With
     # model = "demo" only a checkpoint path counts (it replaces the shipped demo weights).
-    pretrained: str = "openai"
+    pretrained: str = field(default="openai", metadata={"path": True})
     # Images or captions per forward pass (common practice; 32-64 measured best on 2 CPU cores).
     batch_size: int = 64
     # torch threads for the model; 0 = all CPU cores of this process.

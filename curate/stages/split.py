@@ -49,7 +49,7 @@ class SplitConfig:
     # Optional key of the source table's `meta` JSON (manifest column) to split each value apart.
     stratify: str = ""
     # Outside evaluation sets (folders, manifests, tar or shard sets) to keep out of training.
-    eval_sets: list[str] = field(default_factory=list)
+    eval_sets: list[str] = field(default_factory=list, metadata={"path": True})
     # Hamming radius (bits of 64) for the eval-set search and the split's own groups when neardup
     # is off; -1 = neardup's radius. Common practice: <= 10 bits is a likely variant.
     radius: int = -1
