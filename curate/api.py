@@ -59,9 +59,7 @@ def status(out: str | Path) -> dict:
     if not out.exists():
         raise InputError(f"{out} does not exist")
     state = json.loads(state_path.read_text()) if state_path.exists() else {"stages": {}, "finished": False}
-    lock = RunLock(out)
-    holder = lock._holder() if lock.path.exists() else None
-    state["running"] = bool(holder and lock._alive(holder))
+    state["running"] = RunLock(out).held()
     state["outputs"] = {name: (out / name).exists() for name in
                         ("ledger.parquet", "manifest.json", "summary.json", "report.html", "shards")}
     return state

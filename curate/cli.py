@@ -8,6 +8,7 @@ from __future__ import annotations
 import argparse
 import json
 import sys
+from pathlib import Path
 from typing import Any
 
 from . import __version__
@@ -21,7 +22,7 @@ def _cmd_run(a: argparse.Namespace) -> int:
     progress = BarProgress() if (not a.quiet and sys.stderr.isatty()) else NullProgress()
     res = api.run(a.config, out=a.out, input=a.input, sets=a.set, engine=a.engine, eval_sets=a.eval_set,
                   progress=progress)
-    summary = json.loads((__import__("pathlib").Path(a.out) / "summary.json").read_text())
+    summary = json.loads((Path(a.out) / "summary.json").read_text())
     if a.json:
         print(json.dumps({"out": res.out_dir, "summary": summary, "ran": res.ran, "reused": res.reused}))
         return 0

@@ -152,6 +152,11 @@ class RunLock:
         except FileNotFoundError:
             pass
 
+    def held(self) -> bool:
+        """True when a live run holds this lock now."""
+        holder = self._holder() if self.path.exists() else None
+        return bool(holder and self._alive(holder))
+
     def __enter__(self) -> "RunLock":
         return self.acquire()
 
