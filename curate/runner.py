@@ -64,6 +64,19 @@ class RunResult:
     cleared_stale_lock: bool = False
 
 
+def output_path(work: Path, stage: str, shard: str | None = None) -> Path:
+    """Where a stage's output lives: `<stage>/<shard>.parquet`, or `<stage>/all.parquet` for a global
+    stage (shard None). The source table is stage "source"."""
+    return work / stage / f"{shard or 'all'}.parquet"
+
+
+def shard_refs(work: Path, shard: str, stages: list[str] | tuple[str, ...]) -> list[InputRef]:
+    """The source table of one shard, then the given per-shard stages' outputs for it."""
+    return [InputRef(str(output_path(work, "source", shard)))] + [
+        InputRef(str(output_path(work, name, shard))) for name in stages
+    ]
+
+
 def _read(ref: InputRef) -> pa.Table:
     t = workdir.read_table(ref.path)
     if ref.offset is not None:
@@ -150,7 +163,7 @@ def run_pipeline(
             part = src.slice(i * size, size)
             offsets[name] = (i * size, part.num_rows)
             fp = workdir.table_digest(part)
-            path = work / "source" / f"{name}.parquet"
+            path = output_path(work, "source", name)
             if workdir.stored_fingerprint(path) != fp:
                 workdir.write_table(path, part, fp=fp)
             src_fp[name] = fp
@@ -205,15 +218,15 @@ def _remove_stale(folder: Path, keep: set[str]) -> None:
 
 
 def _input_refs(ps: PlannedStage, work: Path, shard: str, fps: dict, offsets: dict) -> tuple[list[InputRef], list]:
-    refs = [InputRef(str(work / "source" / f"{shard}.parquet"))]
+    refs = [InputRef(str(output_path(work, "source", shard)))]
     in_fps: list[Any] = []
     for name in ps.inputs:
         if REGISTRY[name].kind == "shard":
-            refs.append(InputRef(str(work / name / f"{shard}.parquet")))
+            refs.append(InputRef(str(output_path(work, name, shard))))
             in_fps.append(fps[name][shard])
         else:
             off, n = offsets[shard]
-            refs.append(InputRef(str(work / name / "all.parquet"), off, n))
+            refs.append(InputRef(str(output_path(work, name)), off, n))
             in_fps.append(fps[name])
     return refs, in_fps
 
@@ -226,7 +239,7 @@ def _run_shard_stage(ps, cfg, work, shards, src_fp, fps, offsets, eng, progress,
         refs, in_fps = _input_refs(ps, work, shard, fps, offsets)
         fp = shard_fingerprint(ps, [src_fp[shard], in_fps])
         out_fps[shard] = fp
-        path = work / st.name / f"{shard}.parquet"
+        path = output_path(work, st.name, shard)
         if workdir.stored_fingerprint(path) == fp:
             result.reused[st.name] = result.reused.get(st.name, 0) + 1
             continue
@@ -251,21 +264,16 @@ def _run_global_stage(ps, cfg, work, shards, src_fp, fps, progress, result, tota
     parts: list[list[InputRef]] = []
     in_fps: list[Any] = []
     extra: list[InputRef] = []
+    per_shard = [n for n in ps.inputs if REGISTRY[n].kind == "shard"]
     for shard in shards:
-        refs = [InputRef(str(work / "source" / f"{shard}.parquet"))]
-        shard_in = [src_fp[shard]]
-        for name in ps.inputs:
-            if REGISTRY[name].kind == "shard":
-                refs.append(InputRef(str(work / name / f"{shard}.parquet")))
-                shard_in.append(fps[name][shard])
-        parts.append(refs)
-        in_fps.append(shard_in)
+        parts.append(shard_refs(work, shard, per_shard))
+        in_fps.append([src_fp[shard]] + [fps[name][shard] for name in per_shard])
     for name in ps.inputs:
         if REGISTRY[name].kind == "global":
-            extra.append(InputRef(str(work / name / "all.parquet")))
+            extra.append(InputRef(str(output_path(work, name))))
             in_fps.append(fps[name])
     fp = shard_fingerprint(ps, in_fps)
-    path = work / st.name / "all.parquet"
+    path = output_path(work, st.name)
     if workdir.stored_fingerprint(path) == fp:
         result.reused[st.name] = 1
         return fp

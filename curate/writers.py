@@ -38,14 +38,11 @@ SHARD_COLUMNS = [
 
 
 def joined_table(work: Path, plan: list, shards: list[str]) -> pa.Table:
-    from .runner import InputRef, assemble
+    from .runner import InputRef, assemble, output_path, shard_refs
 
-    parts = []
-    for shard in shards:
-        refs = [InputRef(str(work / "source" / f"{shard}.parquet"))]
-        refs += [InputRef(str(work / ps.stage.name / f"{shard}.parquet")) for ps in plan if ps.stage.kind == "shard"]
-        parts.append(refs)
-    extra = [InputRef(str(work / ps.stage.name / "all.parquet")) for ps in plan if ps.stage.kind == "global"]
+    per_shard = [ps.stage.name for ps in plan if ps.stage.kind == "shard"]
+    parts = [shard_refs(work, shard, per_shard) for shard in shards]
+    extra = [InputRef(str(output_path(work, ps.stage.name))) for ps in plan if ps.stage.kind == "global"]
     return assemble(parts, extra, "pack")
 
 
