@@ -302,31 +302,13 @@ def codes_per_image(hcfg: Any) -> int:
 
 
 def codes_matrix(table: pa.Table, hcfg: Any) -> tuple[np.ndarray | None, np.ndarray]:
-    """(n, K) codes from the hash column inspect wrote, and which rows have them."""
+    """(n, K) codes from the hash column inspect wrote, and which rows have them (None: no column)."""
     from .stages import hashes as hmod
 
     col = hmod.codes_column(hcfg)
-    n = table.num_rows
     if col not in table.column_names:
-        return None, np.zeros(n, dtype=bool)
-    k = hmod.variants(hcfg)
-    arr = table.column(col).combine_chunks()
-    valid = np.asarray(arr.is_valid().to_numpy(zero_copy_only=False), dtype=bool)
-    codes = np.zeros((n, k), dtype=np.uint64)
-    if pa.types.is_fixed_size_list(arr.type) and arr.type.list_size == k:
-        import pyarrow.compute as pc
-
-        # Nulls filled first: a uint64 child with nulls would come back as float64 and lose bits.
-        child = pc.fill_null(arr.values, 0).to_numpy(zero_copy_only=False).astype(np.uint64, copy=False)
-        codes[:] = child[arr.offset * k:(arr.offset + n) * k].reshape(n, k)
-    else:
-        for i, v in enumerate(arr.to_pylist()):
-            if v is not None and len(v) == k:
-                codes[i] = np.asarray(v, dtype=np.uint64)
-            else:
-                valid[i] = False
-    codes[~valid] = 0
-    return codes, valid
+        return None, np.zeros(table.num_rows, dtype=bool)
+    return hmod.codes_matrix(table.column(col), hmod.variants(hcfg))
 
 
 def _codes_chunk(datas: list[bytes | Exception], settings: HashSettings) -> list[tuple[Any, Any]]:
