@@ -1,0 +1,79 @@
+"""Typed check records: what every stage writes for every check it makes.
+
+A record says which reason code was checked, the measured value and the
+threshold as numbers (or null), the operator and unit of the pass condition,
+a free-text detail (mode, matched text, the sample a copy belongs to), and
+whether the check failed. The pass condition reads `value op threshold`: a
+short side of 552 with op ">=" and threshold 256 passes. The reason code never
+carries threshold text; reports and `curate explain` format the numbers.
+"""
+from __future__ import annotations
+
+import math
+import operator
+from typing import Any
+
+import pyarrow as pa
+
+CHECK_TYPE = pa.struct(
+    [
+        ("code", pa.string()),
+        ("detail", pa.string()),
+        ("value", pa.float64()),
+        ("threshold", pa.float64()),
+        ("op", pa.string()),
+        ("unit", pa.string()),
+        ("failed", pa.bool_()),
+    ]
+)
+CHECKS_TYPE = pa.list_(CHECK_TYPE)
+
+# Pass conditions a record may state.
+OPS = {">=": operator.ge, "<=": operator.le, ">": operator.gt, "<": operator.lt, "==": operator.eq,
+       "!=": operator.ne}
+
+DETAIL_MAX = 200
+
+
+def _num(v: Any) -> float | None:
+    if v is None:
+        return None
+    f = float(v)
+    return f if math.isfinite(f) else None
+
+
+def check(code: str, *, failed: bool | None = None, value: Any = None, threshold: Any = None,
+          op: str | None = None, unit: str | None = None, detail: Any = None) -> dict:
+    """One check record. `failed` may be left out when value, threshold and op decide it."""
+    if op is not None and op not in OPS:
+        raise ValueError(f"unknown operator {op!r}; use one of {', '.join(OPS)}")
+    v, t = _num(value), _num(threshold)
+    if failed is None:
+        if op is None or v is None or t is None:
+            raise ValueError(f"check {code!r}: give failed=, or value, threshold and op")
+        failed = not OPS[op](v, t)
+    d = None if detail is None else str(detail)
+    if d is not None and len(d) > DETAIL_MAX:
+        d = d[: DETAIL_MAX - 1] + "…"
+    return {"code": code, "detail": d, "value": v, "threshold": t, "op": op, "unit": unit,
+            "failed": bool(failed)}
+
+
+def family(code: str) -> str:
+    """The registered family of a code: 'pii' for 'pii:email', the code itself otherwise."""
+    return code.split(":", 1)[0]
+
+
+def format_number(v: float | None, unit: str | None = None) -> str:
+    """A check's value or threshold for people: integers without decimals, others to 4 digits."""
+    if v is None:
+        return ""
+    s = str(int(v)) if float(v).is_integer() and abs(v) < 1e15 else f"{v:.4g}"
+    return f"{s} {unit}" if unit else s
+
+
+def format_condition(rec: dict) -> str:
+    """The pass condition of a record, e.g. '>= 256 px', or '' when it has none."""
+    if rec.get("op") is None or rec.get("threshold") is None:
+        return ""
+    return f"{rec['op']} {format_number(rec['threshold'], rec.get('unit'))}"
