@@ -46,8 +46,9 @@ def run(config: str | Path | None, *, out: str | Path, input: str | None = None,
 def explain(out: str | Path, sample: str) -> dict:
     """Every check of one sample (by sample_id or source), with value, threshold and verdict."""
     from .ledger import explain as _explain
+    from .stages import all_checks
 
-    return _explain(out, sample)
+    return _explain(out, sample, {code: spec.help for code, spec in all_checks().items()})
 
 
 def status(out: str | Path) -> dict:

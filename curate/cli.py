@@ -68,13 +68,14 @@ def _cmd_explain(a: argparse.Namespace) -> int:
     if info.get("split"):
         print(f"split   {info['split']}")
     print()
-    print(f"{'stage':<16}{'check':<34}{'value':<26}{'threshold':<22}verdict")
+    print(f"{'stage':<16}{'check':<22}{'value':<30}{'passes when':<18}verdict")
     for c in info["checks"]:
-        v = "fail" if c["failed"] else "pass"
-        if c["failed"]:
+        v = c["status"]
+        if c["status"] == "fail":
             v += f" -> {c['action']}"
-        print(f"{c['stage']:<16}{_short(c['code'], 33):<34}{_short(c['value'], 25):<26}"
-              f"{_short(c['threshold'], 21):<22}{v}")
+        value = c["value_text"] if c["value"] is None or not c["detail"] else f"{c['value_text']} ({c['detail']})"
+        print(f"{c['stage']:<16}{_short(c['code'], 21):<22}{_short(value, 29):<30}"
+              f"{_short(c['condition'], 17):<18}{v}")
     if info["group"]:
         print(f"\nnear-duplicate group {info['group_id']} ({len(info['group'])} members):")
         for m in info["group"]:

@@ -278,7 +278,7 @@ def codes_of_bytes(data: bytes | Exception, settings: HashSettings) -> tuple[np.
     """(codes uint64[K], None) for one image, or (None, reason) when it does not decode."""
     from .stages.inspect import inspect_one
 
-    cols, checks, rgb = inspect_one(data, settings.inspect, None)
+    cols, checks, rgb = inspect_one(data, settings.inspect)
     if rgb is None:
         failed = [c["code"] for c in checks if c["failed"]]
         return None, (failed[-1] if failed else "decode_error")
@@ -292,7 +292,7 @@ def image_codes_for(rgb: Any, hcfg: Any) -> np.ndarray:
     """The codes the `[hashes]` section makes for one decoded image (the pipeline's own call)."""
     from .stages import hashes as hmod
 
-    return np.asarray(hmod.hash_columns(rgb, hcfg)[hmod.codes_column(hcfg)], dtype=np.uint64)
+    return np.asarray(hmod.image_codes(rgb, hcfg), dtype=np.uint64)
 
 
 def codes_per_image(hcfg: Any) -> int:
@@ -305,7 +305,7 @@ def codes_matrix(table: pa.Table, hcfg: Any) -> tuple[np.ndarray | None, np.ndar
     """(n, K) codes from the hash column inspect wrote, and which rows have them (None: no column)."""
     from .stages import hashes as hmod
 
-    col = hmod.codes_column(hcfg)
+    col = hmod.CODES
     if col not in table.column_names:
         return None, np.zeros(table.num_rows, dtype=bool)
     return hmod.codes_matrix(table.column(col), hmod.variants(hcfg))

@@ -17,11 +17,25 @@ from pathlib import Path
 from typing import Any
 
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from .errors import LockedError
 
 FP_KEY = b"curate.fingerprint"
+DIGEST_KEY = b"curate.column_sha256"
+
+
+class DamagedWorkFile(OSError):
+    """A work file whose content does not match the checksum stored with it, or that cannot be parsed."""
+
+    def __init__(self, path: str | Path, why: str):
+        super().__init__(f"{path}: {why}")
+        self.path = str(path)
+        self.why = why
+
+    def __reduce__(self) -> tuple:
+        return (DamagedWorkFile, (self.path, self.why))
 
 
 def fingerprint(*parts: Any) -> str:
@@ -34,12 +48,54 @@ def fingerprint(*parts: Any) -> str:
 
 
 def table_digest(table: pa.Table) -> str:
-    """sha256 of a table's content (schema and values), independent of chunking."""
-    sink = pa.BufferOutputStream()
-    t = table.combine_chunks()
-    with pa.ipc.new_stream(sink, t.schema) as w:
-        w.write_table(t)
-    return hashlib.sha256(sink.getvalue().to_pybytes()).hexdigest()
+    """sha256 of a table's content (schema and values), independent of chunking, slicing and metadata."""
+    h = hashlib.sha256()
+    h.update(str(table.schema.remove_metadata()).encode())
+    for col in table.columns:
+        h.update(_array_digest(col.combine_chunks()).encode())
+    return h.hexdigest()
+
+
+def _array_digest(arr: pa.Array) -> str:
+    """A digest of an array's logical values: flat numbers and bytes are hashed from NumPy views
+    (with null slots zeroed); nested types from a plain Parquet encoding, which holds no padding
+    or bytes outside a slice."""
+    import numpy as np
+
+    h = hashlib.sha256()
+    n = len(arr)
+    h.update(f"{arr.type}|{n}|".encode())
+    valid = np.asarray(arr.is_valid().to_numpy(zero_copy_only=False), dtype=bool) if n else np.zeros(0, bool)
+    h.update(np.packbits(valid).tobytes())
+    t = arr.type
+    if pa.types.is_fixed_size_list(t) and (pa.types.is_integer(t.value_type) or pa.types.is_floating(t.value_type)):
+        k = t.list_size
+        vals = arr.values.slice(arr.offset * k, n * k)
+        flat = np.array(pc.fill_null(vals, 0).to_numpy(zero_copy_only=False)).reshape(n, k)
+        flat[~valid] = 0
+        h.update(flat.tobytes())
+    elif pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_boolean(t):
+        h.update(np.asarray(pc.fill_null(arr, False if pa.types.is_boolean(t) else 0)
+                            .to_numpy(zero_copy_only=False)).tobytes())
+    elif pa.types.is_binary(t) or pa.types.is_string(t) or pa.types.is_large_binary(t) or pa.types.is_large_string(t):
+        filled = pc.fill_null(arr, b"" if "binary" in str(t) else "")
+        lengths = pc.binary_length(filled).to_numpy(zero_copy_only=False)
+        h.update(np.asarray(lengths, dtype=np.int64).tobytes())
+        offs = np.frombuffer(filled.buffers()[1], dtype=np.int64 if t in (pa.large_binary(), pa.large_string())
+                             else np.int32)[filled.offset: filled.offset + n + 1]
+        if n:
+            h.update(memoryview(filled.buffers()[2])[int(offs[0]):int(offs[-1])] if filled.buffers()[2] else b"")
+    else:
+        sink = pa.BufferOutputStream()
+        pq.write_table(pa.table({"v": arr}), sink, compression="none", use_dictionary=False,
+                       write_statistics=False, row_group_size=max(1, n))
+        h.update(sink.getvalue())
+    return h.hexdigest()
+
+
+def column_digests(table: pa.Table) -> dict[str, str]:
+    """One content checksum per column, so a reader of some columns can verify what it read."""
+    return {name: table_digest(table.select([i])) for i, name in enumerate(table.column_names)}
 
 
 def _tmp_name(path: Path) -> Path:
@@ -47,28 +103,38 @@ def _tmp_name(path: Path) -> Path:
 
 
 def write_table(path: str | Path, table: pa.Table, fp: str | None = None, **kw: Any) -> None:
-    """Write `table` to `path` atomically, with the fingerprint in the file's metadata."""
+    """Write `table` to `path` atomically, with the fingerprint and per-column checksums in its metadata."""
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
+    meta = dict(table.schema.metadata or {})
     if fp is not None:
-        meta = dict(table.schema.metadata or {})
         meta[FP_KEY] = fp.encode()
-        table = table.replace_schema_metadata(meta)
+    meta[DIGEST_KEY] = json.dumps(column_digests(table.replace_schema_metadata(None))).encode()
+    table = table.replace_schema_metadata(meta)
     tmp = _tmp_name(path)
-    pq.write_table(table, tmp, **kw)
-    _fsync_file(tmp)
-    os.replace(tmp, path)
+    kw.setdefault("use_compliant_nested_type", False)  # list items read back as "item", as written
+    try:
+        pq.write_table(table, tmp, **kw)
+        _fsync_file(tmp)
+        os.replace(tmp, path)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
 
 
 def write_bytes(path: str | Path, data: bytes) -> None:
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = _tmp_name(path)
-    with open(tmp, "wb") as f:
-        f.write(data)
-        f.flush()
-        os.fsync(f.fileno())
-    os.replace(tmp, path)
+    try:
+        with open(tmp, "wb") as f:
+            f.write(data)
+            f.flush()
+            os.fsync(f.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
 
 
 def write_json(path: str | Path, obj: Any) -> None:
@@ -87,15 +153,38 @@ def stored_fingerprint(path: str | Path) -> str | None:
     """The fingerprint stored in a Parquet output, or None if absent/unreadable."""
     try:
         meta = pq.read_schema(path).metadata or {}
-    except (OSError, pa.ArrowInvalid):
+    except (OSError, pa.ArrowException, ValueError):
         return None
     v = meta.get(FP_KEY)
-    return v.decode() if v else None
+    return v.decode(errors="replace") if v else None
 
 
 def read_table(path: str | Path, columns: list[str] | None = None) -> pa.Table:
-    t = pq.read_table(path, columns=columns)
-    return t.replace_schema_metadata(None)
+    """Read a work file (or some of its columns) and verify each column against its stored checksum.
+
+    Raises DamagedWorkFile when the file cannot be parsed or a checksum does not match."""
+    try:
+        pf = pq.ParquetFile(path)
+        meta = pf.schema_arrow.metadata or {}
+        names = pf.schema_arrow.names
+        cols = names if columns is None else [c for c in columns if c in names]
+        t = pf.read(columns=cols)
+    except FileNotFoundError:
+        raise
+    except (OSError, pa.ArrowException, ValueError) as e:
+        raise DamagedWorkFile(path, f"unreadable ({type(e).__name__})") from e
+    raw = meta.get(DIGEST_KEY)
+    if raw is None:
+        raise DamagedWorkFile(path, "no content checksum")
+    try:
+        digests = json.loads(raw)
+    except ValueError as e:
+        raise DamagedWorkFile(path, "content checksum unreadable") from e
+    t = t.replace_schema_metadata(None)
+    for i, name in enumerate(t.column_names):
+        if digests.get(name) != table_digest(t.select([i])):
+            raise DamagedWorkFile(path, f"column {name!r} does not match its checksum")
+    return t
 
 
 def clean_temp_files(root: str | Path) -> int:

@@ -547,10 +547,9 @@ def build() -> list[Sample]:
 
 def codes(img: Image.Image):
     """The pipeline's own perceptual codes of an image (default [hashes] settings)."""
-    from curate.stages.hashes import HashesConfig, codes_column, hash_columns
+    from curate.stages.hashes import HashesConfig, image_codes
 
-    cfg = HashesConfig()
-    return hash_columns(img, cfg)[codes_column(cfg)]
+    return image_codes(img, HashesConfig())
 
 
 def decoded_hash(data: bytes):

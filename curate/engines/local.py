@@ -7,10 +7,10 @@ import os
 from concurrent.futures import FIRST_EXCEPTION, ProcessPoolExecutor, wait
 from typing import Any, Iterator
 
+from ..execute import execute
+
 
 def _run(task: Any) -> int:
-    from ..runner import execute
-
     return execute(task)
 
 
@@ -27,7 +27,7 @@ class LocalEngine:
             from ._lifeline import die_with_parent
 
             ctx = mp.get_context("forkserver")
-            ctx.set_forkserver_preload(["curate.engines._forkserver_init", "curate.stages", "curate.runner"])
+            ctx.set_forkserver_preload(["curate.engines._forkserver_init", "curate.stages", "curate.execute"])
             self._pool = ProcessPoolExecutor(max_workers=self.workers, mp_context=ctx,
                                              initializer=die_with_parent)
         return self._pool

@@ -8,11 +8,10 @@ from __future__ import annotations
 from typing import Any, Iterator
 
 from ..errors import ConfigError
+from ..execute import execute
 
 
 def _run(task: Any) -> int:
-    from curate.runner import execute
-
     return execute(task)
 
 

@@ -7,7 +7,6 @@ bytes. Every value from the data (captions, sources, codes) is HTML-escaped.
 from __future__ import annotations
 
 import base64
-import re
 from html import escape
 from pathlib import Path
 from typing import Any
@@ -15,14 +14,12 @@ from typing import Any
 import pyarrow as pa
 
 from .. import __version__, workdir
-from ..stages.base import base_code
+from ..checks import format_condition, format_number
 from . import plots
 
 EXAMPLES_PER_REASON = 20
 CAPTION_CHARS = 120
 _CAP = ' class="cap"'
-_NUMBER = r"[-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?"
-_BOUND = re.compile(rf"(?:[<>]=?\s*)({_NUMBER})|({_NUMBER})")
 
 CSS = """
 body{margin:0;background:#faf7f2;color:#2b2b2b;font:15px/1.5 system-ui,-apple-system,"Segoe UI",Roboto,
@@ -156,34 +153,30 @@ def _examples(col: dict, by_reason: dict) -> list[str]:
     out.append(f'<p class="note">Up to {EXAMPLES_PER_REASON} per reason, in ledger order. '
                "<code>curate explain OUT SOURCE</code> shows every check of one sample.</p>")
     out.append('<table id="examples"><tr><th>source</th><th>caption</th><th>reason</th>'
-               "<th>value</th><th>threshold</th></tr>")
+               "<th>value</th><th>passes when</th></tr>")
     for reason in by_reason:
         shown = 0
         for i, kept in enumerate(col["kept"]):
             if shown >= EXAMPLES_PER_REASON:
                 break
-            code = next((r for r in col["reasons"][i] or () if base_code(r) == reason), None)
-            if kept or code is None:
+            if kept or reason not in (col["reasons"][i] or ()):
                 continue
-            c = next((c for c in col["checks"][i] or () if c["failed"] and base_code(c["code"]) == reason), {})
+            c = next((c for c in col["checks"][i] or () if c["status"] == "fail" and c["code"] == reason), {})
             cap = col["caption"][i]
             cap = "" if cap is None else (cap if len(cap) <= CAPTION_CHARS else cap[: CAPTION_CHARS - 1] + "\u2026")
-            cells = (col["source"][i], cap, code, c.get("value"), c.get("threshold"))
+            value = format_number(c.get("value"), c.get("unit")) if c.get("value") is not None else c.get("detail")
+            cells = (col["source"][i], cap, reason, value, format_condition(c) if c else "")
             out.append("<tr>" + "".join(f"<td{_CAP if j == 1 else ''}>{escape('' if v is None else str(v))}</td>"
                                         for j, v in enumerate(cells)) + "</tr>")
             shown += 1
     return out + ["</table>"]
 
 
-def _thresholds(checks: list, prefix: str) -> list[float]:
-    """Distinct thresholds of checks whose code starts with `prefix` (at most 3): the number after
-    a comparison sign when there is one, else the first number."""
+def _thresholds(checks: list, code: str) -> list[float]:
+    """Distinct thresholds of the checks with this code (at most 3)."""
     found: set[float] = set()
     for cl in checks:
         for c in cl or ():
-            if c["code"].startswith(prefix) and c["threshold"]:
-                ms = _BOUND.findall(c["threshold"])
-                num = next((a for a, _ in ms if a), None) or next((b for _, b in ms if b), None)
-                if num is not None:
-                    found.add(float(num))
+            if c["code"] == code and c["threshold"] is not None:
+                found.add(float(c["threshold"]))
     return sorted(found)[:3]

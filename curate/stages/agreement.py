@@ -2,9 +2,8 @@
 
 A global stage: percentile mode ranks the whole corpus. Columns: `agreement` (cosine of the
 image and caption embeddings), `clip_score` (CLIPScore, Hessel et al., EMNLP 2021,
-arXiv 2104.08718: 2.5 * max(cos, 0)) and one `agreement_low:<mode and threshold>` check per
-sample with embeddings. Samples without embeddings get nulls and no check (their reasons come
-from the stages that stopped them).
+arXiv 2104.08718: 2.5 * max(cos, 0)) and one `agreement_low` check per sample with embeddings
+(value, threshold and mode). It sees only live samples; the others are listed as skipped.
 
 Thresholds are model-specific (a ViT-B/32 cosine is not comparable with a ViT-L/14 one), so
 absolute mode takes its default from a per-model table with sources; percentile mode needs no
@@ -20,10 +19,11 @@ import numpy as np
 import pyarrow as pa
 
 from ..errors import ConfigError
-from .base import CHECKS_TYPE, CheckSpec, Stage, StageContext, check, checks_column, register
+from ..checks import CHECKS_TYPE, check
+from .base import CheckSpec, Column, ConfigView, StageContext, checks_column, stage
 
 NAME = "agreement"
-VERSION = "1"
+VERSION = "2"
 
 # CLIPScore weight w (Hessel et al. 2021, sec. 3): CLIP-S(c, v) = w * max(cos(c, v), 0), w = 2.5.
 CLIPSCORE_WEIGHT = 2.5
@@ -61,7 +61,7 @@ class AgreementConfig:
 CHECKS = (
     CheckSpec("agreement_low", "drop",
               "the caption does not describe the image: CLIP image-caption cosine below the threshold "
-              "(detail: absolute<T, or topX%<T for percentile mode)"),
+              "(absolute, or the percentile mode's cut-off)"),
 )
 
 
@@ -122,7 +122,17 @@ def percentile_threshold(cos: np.ndarray, keep_percent: float) -> float:
     return float(np.sort(cos)[::-1][k - 1])
 
 
+COLUMNS = (
+    Column("agreement", pa.float32(), "cosine of the CLIP image and caption embeddings", shard=True),
+    Column("clip_score", pa.float32(), "CLIPScore: 2.5 * max(cosine, 0) (Hessel et al. 2021)", shard=True),
+)
+
+
+@stage(name=NAME, version=VERSION, config=AgreementConfig, kind="global", phase="model", alive_only=True,
+       needs=("image_emb", "text_emb"), sections=("embed",), provides=COLUMNS, checks=CHECKS,
+       identity=lambda view: identity(view))
 def run(table: pa.Table, cfg: AgreementConfig, ctx: StageContext) -> pa.Table:
+    """Does the caption describe the image? CLIP cosine against a threshold."""
     n = table.num_rows
     img, img_ok = embedding_matrix(table.column("image_emb"))
     txt, txt_ok = embedding_matrix(table.column("text_emb"))
@@ -130,17 +140,17 @@ def run(table: pa.Table, cfg: AgreementConfig, ctx: StageContext) -> pa.Table:
     valid = img_ok & txt_ok & np.isfinite(cos)
     if cfg.mode == "percentile":
         thr = percentile_threshold(cos[valid], cfg.keep_percent) if valid.any() else None
-        detail = None if thr is None else f"top{cfg.keep_percent:g}%<{thr:.3f}"
+        detail = f"percentile: keep the top {cfg.keep_percent:g}%"
     else:
         thr, _ = resolve_threshold(cfg, ctx.config)
-        detail = f"absolute<{thr:g}"
+        detail = "absolute threshold"
     checks = []
     for i in range(n):
         if not valid[i]:
             checks.append([])
             continue
-        checks.append([check(f"agreement_low:{detail}", round(float(cos[i]), 4), f">={thr:.4g}",
-                             bool(cos[i] < thr))])
+        checks.append([check("agreement_low", value=float(cos[i]), threshold=thr, op=">=", unit="cosine",
+                             detail=detail)])
     agreement = pa.array(np.where(valid, cos, 0.0).astype(np.float32), mask=~valid)
     score = pa.array(clip_score(np.where(valid, cos, 0.0)).astype(np.float32), mask=~valid)
     if ctx.progress is not None:
@@ -151,30 +161,10 @@ def run(table: pa.Table, cfg: AgreementConfig, ctx: StageContext) -> pa.Table:
     )
 
 
-def identity(config: Any) -> dict:
+def identity(config: ConfigView) -> dict:
     """The threshold this run will use and where it comes from (fails early when there is none)."""
     cfg = config.section(NAME)
     if cfg.mode == "percentile":
         return {"mode": "percentile", "keep_percent": cfg.keep_percent}
     thr, source = resolve_threshold(cfg, config)
     return {"mode": "absolute", "threshold": thr, "threshold_source": source}
-
-
-def _active(config: Any) -> bool:
-    return bool(config.section(NAME).enabled and config.section("embed").enabled)
-
-
-register(
-    Stage(
-        name=NAME,
-        version=VERSION,
-        config_cls=AgreementConfig,
-        fn=run,
-        kind="global",
-        inputs=("embed",),
-        reads_sections=("embed",),
-        checks=CHECKS,
-        active=_active,
-        identity=identity,
-    )
-)

@@ -9,6 +9,7 @@ curate.models.clip.LoadedModel.encode_texts). Embeddings are L2-normalised float
 """
 from __future__ import annotations
 
+import functools
 import io
 import logging
 import math
@@ -19,10 +20,11 @@ from typing import Any
 import numpy as np
 import pyarrow as pa
 
-from .base import CHECKS_TYPE, CheckSpec, Stage, StageContext, check, checks_column, register
+from ..checks import CHECKS_TYPE, check
+from .base import CheckSpec, Column, ConfigView, StageContext, checks_column, stage
 
 NAME = "embed"
-VERSION = "1"
+VERSION = "2"
 log = logging.getLogger(__name__)
 
 
@@ -84,6 +86,30 @@ def output_schema(dim: int) -> pa.Schema:
     vec = pa.list_(pa.float16(), dim)
     return pa.schema([("sample_id", pa.string()), ("image_emb", vec), ("text_emb", vec),
                       (checks_column(NAME), CHECKS_TYPE)])
+
+
+@functools.lru_cache(maxsize=8)
+def embed_dim(model: str, pretrained: str) -> int:
+    """The model's embedding size, read from its config without building it (ModelError when unknown)."""
+    from ..models import clip as clipmod
+
+    ref = clipmod.resolve(model, pretrained)
+    if ref.config_path is not None:
+        data = clipmod.read_json_config(ref.config_path)
+        model_cfg = data.get("model_cfg", data)
+    else:
+        import open_clip
+
+        model_cfg = open_clip.get_model_config(ref.arch)
+    return int(model_cfg["embed_dim"])
+
+
+def columns(view: ConfigView) -> tuple[Column, ...]:
+    """Image and caption embeddings; their width is the model's embedding size."""
+    cfg = view.section(NAME)
+    vec = pa.list_(pa.float16(), embed_dim(cfg.model, cfg.pretrained))
+    return (Column("image_emb", vec, "CLIP image embedding (L2-normalised)", ledger=False),
+            Column("text_emb", vec, "CLIP caption embedding (L2-normalised)", ledger=False))
 
 
 def decode_for_model(data: bytes | BaseException, steps: list, draft_px: int) -> np.ndarray:
@@ -167,7 +193,11 @@ def iter_chunks(dataset: ImageChunks, workers: int):
         yield int(i), np.asarray(pixels), list(errors)
 
 
+@stage(name=NAME, version=VERSION, config=EmbedConfig, kind="shard", phase="model", alive_only=True,
+       needs=("locator", "caption", "decoded"), wants=("sha256",), provides=columns, checks=CHECKS,
+       parallel="inline", identity=lambda view: identity(view))
 def run(table: pa.Table, cfg: EmbedConfig, ctx: StageContext) -> pa.Table:
+    """CLIP image and caption embeddings of every live sample."""
     import torch
 
     from ..models import clip as clipmod
@@ -178,7 +208,7 @@ def run(table: pa.Table, cfg: EmbedConfig, ctx: StageContext) -> pa.Table:
     n = table.num_rows
     decoded = table.column("decoded").to_pylist()
     captions = table.column("caption").to_pylist()
-    shas = table.column("sha256").to_pylist()
+    shas = table.column("sha256").to_pylist() if "sha256" in table.column_names else [None] * n
     locators = table.column("locator").to_pylist()
     eligible = [i for i in range(n) if decoded[i] is True and captions[i] is not None]
 
@@ -264,33 +294,19 @@ def _assemble(table: pa.Table, dim: int, row_image: np.ndarray, row_text: np.nda
     checks = []
     for i in range(n):
         k = row_image[i]
-        checks.append([check("embed_error", img_err[k], None, True)] if k >= 0 and img_err[k] is not None else [])
+        checks.append([check("embed_error", failed=True, detail=img_err[k])] if k >= 0 and img_err[k] is not None
+                      else [])
     return pa.Table.from_arrays(
         [table.column("sample_id"), column(img_rows), column(txt_rows), pa.array(checks, type=CHECKS_TYPE)],
         schema=output_schema(dim),
     )
 
 
-def identity(config: Any) -> dict:
+def identity(view: ConfigView) -> dict:
     """Model name, tag or path and weights checksum (downloads tagged weights on first use)."""
     from ..models import clip as clipmod
 
-    cfg = config.section(NAME)
+    cfg = view.section(NAME)
     out = clipmod.identity(cfg.model, cfg.pretrained, cfg.cache_dir or None)
     out["quantize"] = bool(cfg.quantize)
     return out
-
-
-register(
-    Stage(
-        name=NAME,
-        version=VERSION,
-        config_cls=EmbedConfig,
-        fn=run,
-        kind="shard",
-        inputs=("inspect", "caption"),
-        checks=CHECKS,
-        parallel="inline",
-        identity=identity,
-    )
-)

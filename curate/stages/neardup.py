@@ -7,8 +7,9 @@ brute force), and, when the embed stage ran and `semantic` is on, image embeddin
 `cosine` (SemDeDup-style search within k-means clusters beyond `cosine_exact_max` samples). Linked
 samples form groups (union-find, so links chain).
 
-The keeper of a group is, in order: a sample no other check drops, the most pixels (width*height),
-the highest agreement, the smallest sample_id. Every other member fails the `duplicate` check; its
+Only live samples are grouped (a sample another check already dropped never takes a group's
+place). The keeper of a group is, in order: a sample with no flags, the most pixels
+(width*height), the highest agreement, the smallest sample_id. Every other member fails the `duplicate` check; its
 `dup_of` names the keeper, `dup_signal` the strongest signal linking it to the keeper
 ("sha256" < "phash"/"dhash" < "embedding") and `dup_distance` its distance to the keeper in that
 signal's unit: Hamming bits of the closest views for sha256 (0) and hash codes, 1 - cosine for
@@ -26,14 +27,14 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from .. import hashing
-from ..policy import verdict
+from ..checks import CHECKS_TYPE, check
 from . import hashes as hashes_mod
-from .base import CHECKS_TYPE, CheckSpec, Stage, StageContext, all_checks, check, checks_column, register
+from .base import CheckSpec, Column, StageContext, checks_column, stage
 
 log = logging.getLogger(__name__)
 
 NAME = "neardup"
-VERSION = "1"
+VERSION = "2"
 
 
 @dataclass
@@ -72,17 +73,15 @@ CHECKS = (
     CheckSpec("duplicate", "drop", "a copy (same bytes, near-identical picture or embedding) of the group's kept sample"),
 )
 
-OUTPUT_SCHEMA = pa.schema(
-    [
-        ("sample_id", pa.string()),
-        ("group_id", pa.string()),
-        ("group_size", pa.int32()),
-        ("dup_of", pa.string()),
-        ("dup_signal", pa.string()),
-        ("dup_distance", pa.float32()),
-        (checks_column(NAME), CHECKS_TYPE),
-    ]
+COLUMNS = (
+    Column("group_id", pa.string(), "near-duplicate group: the kept sample's id", shard=True),
+    Column("group_size", pa.int32(), "members of the group"),
+    Column("dup_of", pa.string(), "the kept sample this one is a copy of"),
+    Column("dup_signal", pa.string(), "what linked it: sha256, the hash kind, or embedding"),
+    Column("dup_distance", pa.float32(), "distance to the kept sample in that signal's unit"),
 )
+OUTPUT_SCHEMA = pa.schema([("sample_id", pa.string())] + [(c.name, c.type) for c in COLUMNS]
+                          + [(checks_column(NAME), CHECKS_TYPE)])
 
 
 def _embeddings(table: pa.Table, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -105,23 +104,6 @@ def _embeddings(table: pa.Table, rows: np.ndarray) -> tuple[np.ndarray, np.ndarr
                 emb[i] = v
     emb[~has] = 0
     return emb, has
-
-
-def _dropped_elsewhere(table: pa.Table, rows: np.ndarray, ctx: StageContext) -> np.ndarray:
-    """Whether another stage's checks already drop each of the given rows."""
-    cols = [c for c in table.column_names if c.endswith(".checks") and c != checks_column(NAME)]
-    out = np.zeros(len(rows), dtype=bool)
-    if not cols or not len(rows):
-        return out
-    specs = all_checks()
-    decide = getattr(ctx.config, "decide", None) if ctx.config is not None else None
-    overrides = dict(getattr(decide, "actions", {}) or {})
-    idx = pa.array(rows, type=pa.int64())
-    lists = [table.column(c).take(idx).to_pylist() for c in cols]
-    for k in range(len(rows)):
-        reasons, _ = verdict((lst[k] for lst in lists), specs, overrides, skip_codes=frozenset({"duplicate"}))
-        out[k] = bool(reasons)
-    return out
 
 
 def _keepers(labels: np.ndarray, rank: np.ndarray) -> np.ndarray:
@@ -189,19 +171,23 @@ def _sha_keys(table: pa.Table, rows: np.ndarray) -> np.ndarray:
     return np.asarray(enc.fill_null(-1).to_numpy(zero_copy_only=False), dtype=np.int64)
 
 
+@stage(name=NAME, version=VERSION, config=NeardupConfig, kind="global", phase="group", alive_only=True,
+       needs=("decoded", "width", "height"), wants=("sha256", hashes_mod.CODES, "image_emb", "agreement",
+                                                    "flags_before"),
+       sections=("hashes",), provides=COLUMNS, checks=CHECKS, after=("decontaminate",), parallel="inline")
 def run(table: pa.Table, cfg: NeardupConfig, ctx: StageContext) -> pa.Table:
+    """Group copies of one picture and keep the best copy of each group."""
     n = table.num_rows
     sample_id = table.column("sample_id").to_pylist()
     decoded = np.asarray(table.column("decoded").fill_null(False).to_numpy(zero_copy_only=False), dtype=bool)
     rows = np.flatnonzero(decoded)
     m = rows.shape[0]
 
-    hcfg = getattr(ctx.config, "hashes", None) if ctx.config is not None else None
+    hcfg = ctx.config.section("hashes")
     codes = has_codes = None
-    signal_name = "phash"
-    if hcfg is not None and getattr(hcfg, "enabled", False) and hashes_mod.codes_column(hcfg) in table.column_names:
-        signal_name = hashes_mod.codes_column(hcfg)
-        all_codes, all_has = hashes_mod.codes_matrix(table.column(signal_name), hashes_mod.variants(hcfg))
+    signal_name = hcfg.kind
+    if hashes_mod.CODES in table.column_names:
+        all_codes, all_has = hashes_mod.codes_matrix(table.column(hashes_mod.CODES), hashes_mod.variants(hcfg))
         codes, has_codes = all_codes[rows], all_has[rows]
     emb = has_emb = None
     if cfg.semantic and "image_emb" in table.column_names and m:
@@ -214,11 +200,10 @@ def run(table: pa.Table, cfg: NeardupConfig, ctx: StageContext) -> pa.Table:
         threads=threads,
     )
 
-    # Keeper rule. Only samples in groups of two or more need the (slower) verdict lookup.
     sizes = np.bincount(lab_all, minlength=m) if m else np.zeros(0, np.int64)
-    in_group = np.flatnonzero(sizes[lab_all] > 1) if m else np.zeros(0, np.int64)
-    dropped = np.zeros(m, dtype=bool)
-    dropped[in_group] = _dropped_elsewhere(table, rows[in_group], ctx)
+    flagged = np.zeros(m, dtype=bool)
+    if "flags_before" in table.column_names:
+        flagged = np.asarray([bool(f) for f in table.column("flags_before").to_pylist()], dtype=bool)[rows]
     width = table.column("width").fill_null(0).to_numpy(zero_copy_only=False)[rows].astype(np.int64)
     height = table.column("height").fill_null(0).to_numpy(zero_copy_only=False)[rows].astype(np.int64)
     agree = np.full(m, -np.inf)
@@ -226,12 +211,12 @@ def run(table: pa.Table, cfg: NeardupConfig, ctx: StageContext) -> pa.Table:
         a = table.column("agreement").to_numpy(zero_copy_only=False)[rows].astype(np.float64)
         agree = np.where(np.isnan(a), -np.inf, a)
     ids = [sample_id[i] for i in rows]
-    # Rank: not dropped elsewhere, most pixels, highest agreement, smallest sample_id.
+    # Rank: no flags, most pixels, highest agreement, smallest sample_id.
     id_rank = np.empty(m, np.int64)
     if m:
         by_id = pc.sort_indices(table.column("sample_id").take(pa.array(rows, type=pa.int64())))
         id_rank[by_id.to_numpy()] = np.arange(m)
-    rank_order = np.lexsort((id_rank, -agree, -(width * height), dropped))
+    rank_order = np.lexsort((id_rank, -agree, -(width * height), flagged))
     rank = np.empty(m, np.int64)
     rank[rank_order] = np.arange(m)
     keeper = _keepers(lab_all, rank) if m else np.zeros(0, np.int64)
@@ -252,7 +237,6 @@ def run(table: pa.Table, cfg: NeardupConfig, ctx: StageContext) -> pa.Table:
     dist_emb = np.zeros(m, np.float64)
     if emb is not None and emb.shape[1] and others.shape[0]:
         dist_emb[others] = 1.0 - np.einsum("ij,ij->i", emb[others], emb[keeper[others]])
-    thresholds = {"sha256": "same sha256", signal_name: f"<={cfg.radius} bits", "embedding": f">={cfg.cosine:g} cosine"}
     for k in range(m):
         i = rows[k]
         kk = keeper[k]
@@ -260,18 +244,22 @@ def run(table: pa.Table, cfg: NeardupConfig, ctx: StageContext) -> pa.Table:
         group_id[i] = gid
         group_size[i] = int(sizes[lab_all[k]])
         if kk == k:
-            value = "no copy" if group_size[i] == 1 else f"kept over {group_size[i] - 1} copies"
-            checks[i] = [check("duplicate", value, f"<={cfg.radius} bits", False)]
+            detail = "no copy" if group_size[i] == 1 else f"kept over {group_size[i] - 1} copies"
+            checks[i] = [check("duplicate", failed=False, detail=detail)]
             continue
         if lab_sha[k] == lab_sha[kk]:
             sig, dist = "sha256", 0.0
+            rec = check("duplicate", failed=True, detail=f"same bytes as {gid}")
         elif lab_hash[k] == lab_hash[kk]:
             sig, dist = signal_name, float(dist_hash[k])
+            rec = check("duplicate", failed=True, value=dist, threshold=cfg.radius, op=">", unit="bits",
+                        detail=f"copy of {gid} ({sig})")
         else:
             sig, dist = "embedding", float(max(dist_emb[k], 0.0))
+            rec = check("duplicate", failed=True, value=1.0 - dist, threshold=cfg.cosine, op="<", unit="cosine",
+                        detail=f"copy of {gid} (embedding)")
         dup_of[i], dup_signal[i], dup_distance[i] = gid, sig, dist
-        shown = f"{dist:.4g}" if sig == "embedding" else f"{int(dist)}" if dist == dist else "?"
-        checks[i] = [check("duplicate", f"copy of {gid} ({sig}, distance {shown})", thresholds[sig], True)]
+        checks[i] = [rec]
     return pa.Table.from_arrays(
         [
             table.column("sample_id"),
@@ -284,18 +272,3 @@ def run(table: pa.Table, cfg: NeardupConfig, ctx: StageContext) -> pa.Table:
         ],
         schema=OUTPUT_SCHEMA,
     )
-
-
-register(
-    Stage(
-        name=NAME,
-        version=VERSION,
-        config_cls=NeardupConfig,
-        fn=run,
-        kind="global",
-        inputs=("inspect", "caption", "caption_repeats", "embed", "agreement"),
-        reads_sections=("hashes", "decide"),
-        checks=CHECKS,
-        parallel="inline",
-    )
-)

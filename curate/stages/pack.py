@@ -11,6 +11,9 @@ from typing import Literal
 
 from .base import register_section
 
+# Columns the shard writer reads; a config whose active stages do not provide them is refused.
+NEEDS = ("caption", "decoded", "sha256", "width", "height", "format")
+
 
 @dataclass
 class PackConfig:

@@ -12,10 +12,11 @@ from dataclasses import dataclass, field
 
 import pyarrow as pa
 
-from .base import CHECKS_TYPE, CheckSpec, Stage, StageContext, check, checks_column, register
+from ..checks import CHECKS_TYPE, check
+from .base import CheckSpec, StageContext, checks_column, stage
 
 NAME = "risk"
-VERSION = "1"
+VERSION = "2"
 
 
 @dataclass
@@ -102,7 +103,10 @@ def find_pii(text: str, kinds: list[str]) -> list[tuple[str, str]]:
 PII_KINDS = ("email", "phone", "card", "iban", "url")
 
 
+@stage(name=NAME, version=VERSION, config=RiskConfig, kind="shard", phase="check",
+       wants=("caption", "gps", "place"), checks=CHECKS)
 def run(table: pa.Table, cfg: RiskConfig, ctx: StageContext) -> pa.Table:
+    """Screening flags: personal data in captions, location metadata, caption term lists."""
     captions = table.column("caption").to_pylist() if "caption" in table.column_names else [None] * table.num_rows
     gps = table.column("gps").to_pylist() if "gps" in table.column_names else [None] * table.num_rows
     place = table.column("place").to_pylist() if "place" in table.column_names else [None] * table.num_rows
@@ -116,13 +120,13 @@ def run(table: pa.Table, cfg: RiskConfig, ctx: StageContext) -> pa.Table:
             for kind, text in find_pii(cap, cfg.pii):
                 found.setdefault(kind, text)
             for kind in cfg.pii:
-                chks.append(check(f"pii:{kind}", _mask(found.get(kind)), "absent", kind in found))
+                chks.append(check(f"pii:{kind}", failed=kind in found, detail=_mask(found.get(kind))))
             for name, rx in term_res.items():
                 m = rx.search(cap)
-                chks.append(check(f"term:{name}", m.group() if m else None, "absent", m is not None))
+                chks.append(check(f"term:{name}", failed=m is not None, detail=m.group() if m else None))
         if cfg.location and g is not None:
-            where = "GPS" if g else (pl or None)
-            chks.append(check("location", where, "absent", bool(g or pl)))
+            where = "GPS coordinates" if g else (pl or None)
+            chks.append(check("location", failed=bool(g or pl), detail=where))
         out.append(chks)
         if ctx.progress is not None:
             ctx.progress.advance(1)
@@ -135,9 +139,3 @@ def _mask(text: str | None) -> str | None:
         return None
     t = text.strip()
     return t if len(t) <= 6 else t[:3] + "…" + t[-2:]
-
-
-register(
-    Stage(name=NAME, version=VERSION, config_cls=RiskConfig, fn=run, kind="shard", inputs=("inspect", "caption"),
-          checks=CHECKS)
-)
