@@ -80,8 +80,8 @@ PRESETS: dict[str, dict[str, dict]] = {
 
 def init(path: str | Path, *, preset: str = "default", force: bool = False) -> Path:
     """Write a commented starter config (every section and key, with defaults and their sources)."""
-    from .plan import config_sections
     from .config import BUILTIN_SECTIONS
+    from .plan import config_sections
 
     if preset not in PRESETS:
         raise ConfigError(f"unknown preset {preset!r}; choose one of {', '.join(PRESETS)}", key="preset")

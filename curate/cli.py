@@ -27,12 +27,14 @@ def _cmd_run(a: argparse.Namespace) -> int:
         print(json.dumps({"out": res.out_dir, "summary": summary, "ran": res.ran, "reused": res.reused}))
         return 0
     print(f"curate {__version__}: {res.samples} samples in {res.shards} shard(s)")
-    for stage in res.seconds:
-        if stage in ("list", "pack"):
-            continue
-        ran, reused = res.ran.get(stage, 0), res.reused.get(stage, 0)
-        print(f"  {stage:<16} {res.seconds[stage]:7.2f}s  computed {ran}, reused {reused} shard(s)")
-    print(f"  {'outputs':<16} {res.seconds.get('pack', 0.0):7.2f}s  ledger, shards, manifest, summary, report")
+    for names, kind, secs in res.passes:
+        ran, reused = res.ran.get(names[0], 0), res.reused.get(names[0], 0)
+        what = f"computed {ran}, reused {reused} shard(s)" if kind == "shard" else ("computed" if ran else "reused")
+        label = ", ".join(names)
+        print(f"  {label:<32}{secs:7.2f}s  {what}")
+    print(f"  {'outputs':<32}{res.seconds.get('pack', 0.0):7.2f}s  ledger, shards, manifest, summary, report")
+    for note in res.notes:
+        print(f"note: {note}")
     print(f"kept {summary['kept']} of {summary['samples']} ({100 * summary['kept_fraction']:.1f}%)")
     if summary["by_reason"]:
         print("drops by reason (a sample may have several):")

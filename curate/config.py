@@ -9,12 +9,13 @@ from __future__ import annotations
 import dataclasses
 import hashlib
 import json
-import tomllib
 import types
 import typing
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Literal
+
+import tomllib
 
 from .errors import ConfigError
 

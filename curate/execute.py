@@ -78,28 +78,36 @@ def _columns(run: StageRun, config: Any) -> tuple:
     return st.columns(st.view(config))
 
 
+def call_stage(name: str, table: pa.Table, config: Any, rows: list[int] | None = None,
+               flags_before: list[list[str]] | None = None, **ctx_kw: Any) -> pa.Table:
+    """Run one registered stage on a table as the runner does: only `rows` (all when None) are shown
+    to it, its output is checked against its declaration, and the other rows get nulls and no checks."""
+    st = REGISTRY[name]
+    view = st.view(config)
+    needs = st.needed(view) + st.wanted(view)
+    sub = table.select([c for c in dict.fromkeys(("sample_id", *needs)) if c in table.column_names])
+    if rows is not None:
+        sub = sub.take(pa.array(rows, type=pa.int64()))
+    if flags_before is not None:
+        sub = sub.append_column("flags_before", pa.array(flags_before, pa.list_(pa.string())))
+    ctx = StageContext(config=view, **ctx_kw)
+    shard = ctx_kw.get("shard")
+    try:
+        res = st.fn(sub, view.section(st.config_section), ctx) if sub.num_rows else None
+    except Exception as e:
+        raise StageError(f"{type(e).__name__}: {e}", stage=name, shard=shard) from e
+    res = _conform(res, sub, st, view, shard or "")
+    return _expand(res, table.column("sample_id"), rows)
+
+
 def _run_stages(table: pa.Table, task: Task, offset: int, progress: Any) -> dict[str, pa.Table]:
     """Run every stage of the task on `table` (rows offset.. of the task's table); returns full-row outputs."""
     out: dict[str, pa.Table] = {}
     n = table.num_rows
     for run in task.runs:
-        st = REGISTRY[run.name]
-        view = st.view(task.config)
         seen, flags = _seen_rows(run, offset, n)
-        cols = [c for c in ("sample_id", *run.needs) if c in table.column_names]
-        sub = table.select(cols)
-        if seen is not None:
-            sub = sub.take(pa.array(seen, type=pa.int64()))
-        if flags is not None:
-            sub = sub.append_column("flags_before", pa.array(flags, pa.list_(pa.string())))
-        ctx = StageContext(config=view, shard=task.shard, workers=task.workers, progress=progress,
-                           work_dir=task.work_dir, extra=task.extra)
-        try:
-            res = st.fn(sub, view.section(st.config_section), ctx) if sub.num_rows else None
-        except Exception as e:
-            raise StageError(f"{type(e).__name__}: {e}", stage=run.name, shard=task.shard) from e
-        res = _conform(res, sub, st, view, task.shard)
-        full = _expand(res, table.column("sample_id"), seen)
+        full = call_stage(run.name, table, task.config, seen, flags, shard=task.shard, workers=task.workers,
+                          progress=progress, work_dir=task.work_dir, extra=task.extra)
         out[run.name] = full
         for name in full.column_names:
             if name != "sample_id" and name not in table.column_names:

@@ -99,9 +99,8 @@ def source_columns() -> dict[str, Column]:
     return {f.name: Column(f.name, f.type, ledger=False) for f in SOURCE_SCHEMA}
 
 
-def _fix_hint(provider: Stage, consumer: str) -> str:
-    sec = provider.config_section
-    return f"set {sec}.enabled = true, or turn off {consumer}"
+def _fix_hint(provider: Stage, consumer_section: str) -> str:
+    return f"set {provider.config_section}.enabled = true, or {consumer_section}.enabled = false"
 
 
 def _providers(active: list[Stage], cfg: PipelineConfig) -> tuple[dict[str, str], dict[str, Column]]:
@@ -125,12 +124,12 @@ def _all_providers(cfg: PipelineConfig) -> dict[str, Stage]:
     return out
 
 
-def _missing(consumer: str, column: str, cfg: PipelineConfig) -> PlanError:
+def _missing(consumer: str, section: str, column: str, cfg: PipelineConfig) -> PlanError:
     prov = _all_providers(cfg).get(column)
     if prov is None:
         return PlanError(f"{consumer} needs column {column!r}, which no registered stage provides")
-    return PlanError(f"{consumer} needs column {column!r}, provided by stage {prov.name}, which is off: "
-                     f"{_fix_hint(prov, consumer)}", key=f"{prov.config_section}.enabled")
+    return PlanError(f"{consumer} needs column {column!r} from stage {prov.name}, which is off; "
+                     f"{_fix_hint(prov, section)}", key=f"{prov.config_section}.enabled")
 
 
 def _order(active: list[Stage], deps: dict[str, set[str]]) -> list[Stage]:
@@ -172,7 +171,7 @@ def build_plan(cfg: PipelineConfig) -> Plan:
                 got.append(col)
                 continue
             if col not in providers:
-                raise _missing(f"stage {st.name}", col, cfg)
+                raise _missing(f"stage {st.name}", st.config_section, col, cfg)
             got.append(col)
         got += [c for c in st.wanted(view) if c in providers or (c == FLAGS_BEFORE.name and st.alive_only)]
         needs[st.name] = tuple(dict.fromkeys(got))
@@ -189,7 +188,7 @@ def build_plan(cfg: PipelineConfig) -> Plan:
     if getattr(pack_cfg, "enabled", True):
         for col in pack_section.NEEDS:
             if col not in providers:
-                raise _missing("pack (the output shards)", col, cfg)
+                raise _missing("pack (the output shards)", "pack", col, cfg)
     columns[FLAGS_BEFORE.name] = FLAGS_BEFORE
     ordered = _order(active, deps)
     planned = [_planned(st, cfg, needs[st.name], providers, ordered) for st in ordered]

@@ -48,7 +48,8 @@ class RunResult:
     reused: dict[str, int] = field(default_factory=dict)  # stage -> shards taken from the work dir
     computed_samples: dict[str, int] = field(default_factory=dict)
     reused_samples: dict[str, int] = field(default_factory=dict)
-    seconds: dict[str, float] = field(default_factory=dict)
+    seconds: dict[str, float] = field(default_factory=dict)  # per stage (a fused pass's time is shared)
+    passes: list[tuple[list[str], str, float]] = field(default_factory=list)  # (stages, kind, seconds)
     cleared_stale_lock: bool = False
     repaired: list[str] = field(default_factory=list)  # damaged work files that were recomputed
     notes: list[str] = field(default_factory=list)
@@ -233,6 +234,7 @@ def _run_pass(p: Pass, w: _Work, cfg: PipelineConfig, eng: Any, progress: Progre
     else:
         _run_shard_pass(p, w, cfg, eng, progress, result)
     secs = time.perf_counter() - t
+    result.passes.append((p.names, p.kind, secs))
     for ps in p.stages:
         result.seconds[ps.name] = result.seconds.get(ps.name, 0.0) + secs / len(p.stages)
         state["stages"][ps.name] = {

@@ -25,6 +25,7 @@ from .config import PipelineConfig
 from .plan import SOURCE, Plan
 from .stages import REGISTRY, Column
 from .stages.inspect import CHANGED
+
 # Columns every shard row has, besides the stages' shard columns.
 CORE_SHARD = (
     Column("sample_id", pa.string()),

@@ -24,8 +24,9 @@ from pathlib import Path
 from PIL import Image, ImageDraw, ImageFilter, ImageFont, ImageOps
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-import workshop  # noqa: E402
 from curate.hashing import min_distance  # noqa: E402
+
+import workshop  # noqa: E402
 
 HERE = Path(__file__).resolve().parent
 MARKER = ".kilnworks-corpus"  # lets a re-run clear a folder this script made, and nothing else

@@ -79,3 +79,21 @@ def to_jpeg(img, quality=90) -> bytes:
     buf = io.BytesIO()
     img.save(buf, "JPEG", quality=quality)
     return buf.getvalue()
+
+
+def pipeline_config(*sets: str, path=None):
+    """A resolved pipeline config: built-in defaults < `path` < `sets`."""
+    from curate.config import load_config
+    from curate.plan import config_sections
+
+    return load_config(path, sets=list(sets), sections=config_sections())
+
+
+def stage_call(name: str, table, *sets: str, cfg=None, **ctx_kw):
+    """Call one registered stage's function on a table the way the runner does (its config view)."""
+    from curate.stages import REGISTRY, StageContext
+
+    cfg = cfg if cfg is not None else pipeline_config(*sets)
+    st = REGISTRY[name]
+    view = st.view(cfg)
+    return st.fn(table, view.section(st.config_section), StageContext(config=view, **ctx_kw))

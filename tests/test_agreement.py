@@ -7,11 +7,11 @@ import numpy as np
 import pyarrow as pa
 import pytest
 
-from curate.config import load_config
 from curate.errors import ConfigError
 from curate.stages import agreement
-from curate.stages.base import REGISTRY, StageContext, base_code, checks_column
-from curate.stages.embed import EmbedConfig
+from curate.stages.base import REGISTRY, checks_column
+
+from conftest import pipeline_config, stage_call
 
 DIM = 16
 
@@ -45,15 +45,12 @@ def _table(cosines: list[float | None]) -> pa.Table:
                      "text_emb": col(txt)})
 
 
-def _ctx(*sets: str) -> StageContext:
-    cfg = load_config(None, sets=list(sets),
-                      sections={"embed": EmbedConfig, "agreement": agreement.AgreementConfig})
-    return StageContext(config=cfg)
+def _view(*sets: str):
+    return REGISTRY["agreement"].view(pipeline_config(*sets))
 
 
 def _run(cosines, *sets):
-    ctx = _ctx(*sets)
-    return agreement.run(_table(cosines), ctx.config.agreement, ctx).to_pylist()
+    return stage_call("agreement", _table(cosines), *sets).to_pylist()
 
 
 def test_clip_score_worked_values():
@@ -71,7 +68,9 @@ def test_absolute_mode_laion_threshold():
     assert [r["clip_score"] for r in rows[:4]] == pytest.approx([2.25, 1.25, 0.675, 0.725], abs=5e-3)
     failed = [[c["failed"] for c in r[checks_column("agreement")]] for r in rows]
     assert failed == [[False], [False], [True], [False], []]
-    assert rows[2][checks_column("agreement")][0]["code"] == "agreement_low:absolute<0.28"
+    rec = rows[2][checks_column("agreement")][0]
+    assert rec["code"] == "agreement_low" and rec["threshold"] == 0.28 and rec["op"] == ">="
+    assert rec["detail"] == "absolute threshold" and rec["unit"] == "cosine"
     assert rows[4]["agreement"] is None and rows[4]["clip_score"] is None
 
 
@@ -79,7 +78,7 @@ def test_explicit_threshold_overrides_default():
     rows = _run([0.5, 0.6], "agreement.threshold=0.55")
     codes = [r[checks_column("agreement")][0] for r in rows]
     assert [c["failed"] for c in codes] == [True, False]
-    assert codes[0]["code"] == "agreement_low:absolute<0.55"
+    assert codes[0]["code"] == "agreement_low" and codes[0]["threshold"] == 0.55
 
 
 def test_percentile_mode_keeps_top_share():
@@ -90,9 +89,9 @@ def test_percentile_mode_keeps_top_share():
     kept = [r["sample_id"] for r in rows if r[checks_column("agreement")] and
             not r[checks_column("agreement")][0]["failed"]]
     assert kept == ["s7", "s8", "s9"]
-    code = rows[0][checks_column("agreement")][0]["code"]
-    assert code == "agreement_low:top30%<0.800"
-    assert base_code(code) == "agreement_low"
+    rec = rows[0][checks_column("agreement")][0]
+    assert rec["code"] == "agreement_low" and rec["threshold"] == pytest.approx(0.8, abs=2e-3)
+    assert "percentile" in rec["detail"] and "30%" in rec["detail"]
 
 
 def test_percentile_rounds_share_up_and_keeps_ties():
@@ -117,32 +116,30 @@ def test_float16_storage_keeps_cosine_to_1e3():
 
 
 def test_unknown_model_needs_threshold_or_percentile():
-    ctx = _ctx("embed.model=RN50", "embed.pretrained=openai")
+    sets = ("embed.model=RN50", "embed.pretrained=openai")
     with pytest.raises(ConfigError, match="percentile"):
-        agreement.identity(ctx.config)
+        agreement.identity(_view(*sets))
     with pytest.raises(ConfigError, match="agreement.threshold"):
-        agreement.run(_table([0.3]), ctx.config.agreement, ctx)
+        _run([0.3], *sets)
 
 
 def test_default_table_and_demo_calibration():
     assert agreement.default_threshold("ViT-B-32", "openai")[0] == 0.28  # LAION-5B sec. 3.1
     thr, source = agreement.default_threshold("demo", "openai")  # a tag does not apply to the demo
     assert -1.0 < thr < 1.0 and "Youden" in source
-    ident = agreement.identity(_ctx("embed.model=demo", "embed.pretrained=").config)
+    ident = agreement.identity(_view("embed.model=demo", "embed.pretrained="))
     assert ident["threshold"] == thr
 
 
 def test_registered_contract():
     st = REGISTRY["agreement"]
-    assert st.kind == "global" and st.inputs == ("embed",)
+    assert st.kind == "global" and st.alive_only and set(st.needs) == {"image_emb", "text_emb"}
     spec = {c.code: c for c in st.checks}["agreement_low"]
     assert spec.action == "drop"
-    cfg = _ctx("embed.enabled=false").config
-    assert st.active(cfg) is False
 
 
 def test_config_validation():
     with pytest.raises(ConfigError):
-        _ctx("agreement.keep_percent=0")
+        pipeline_config("agreement.keep_percent=0")
     with pytest.raises(ConfigError):
-        _ctx("agreement.threshold=1.5")
+        pipeline_config("agreement.threshold=1.5")

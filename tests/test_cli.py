@@ -4,15 +4,15 @@ from __future__ import annotations
 import json
 import subprocess
 import sys
-from pathlib import Path
 
 import pytest
 
-from conftest import ROOT, make_small_corpus
 from curate import api
 from curate.cli import build_parser, main
 
-FAST = ["--set", "run.workers=1", "--set", "embed.enabled=false"]
+from conftest import ROOT, make_small_corpus
+
+FAST = ["--set", "run.workers=1", "--set", "embed.enabled=false", "--set", "agreement.enabled=false"]
 
 
 def _commands() -> dict:

@@ -6,8 +6,9 @@ import json
 import pyarrow.parquet as pq
 import pytest
 
-from conftest import make_small_corpus
 from curate import api
+
+from conftest import make_small_corpus
 
 ray = pytest.importorskip("ray")
 
@@ -15,7 +16,7 @@ ray = pytest.importorskip("ray")
 def test_ray_and_local_give_identical_outputs(tmp_path):
     corpus = make_small_corpus(tmp_path / "c", 24)
     sets = ["input.shard_size=6", "run.workers=1", "run.ray_task_cpus=0.5"]
-    sets += ["embed.enabled=false"]  # CPU-light here; the model stages have their own tests
+    sets += ["embed.enabled=false", "agreement.enabled=false"]  # CPU-light here; the model stages have their own tests
     api.run(None, input=str(corpus), out=str(tmp_path / "local"), sets=sets, engine="local")
     res = api.run(None, input=str(corpus), out=str(tmp_path / "ray"), sets=sets, engine="ray")
     assert res.ran["inspect"] == 4

@@ -12,8 +12,9 @@ import numpy as np
 import pyarrow.parquet as pq
 from PIL import Image
 
-from conftest import jpeg_bytes
 from curate import api
+
+from conftest import jpeg_bytes
 
 
 def _png_header_only(w: int, h: int) -> bytes:
@@ -135,7 +136,7 @@ def test_tar_with_traversal_members_writes_nothing_outside(tmp_path):
         add("/abs/evil2.jpg", jpeg_bytes((400, 300), (0, 250, 0)))
     before = set(tmp_path.rglob("*"))
     out = tmp_path / "out"
-    api.run(None, input=str(root), out=str(out), sets=["run.workers=1", "embed.enabled=false"])
+    api.run(None, input=str(root), out=str(out), sets=["run.workers=1", "embed.enabled=false", "agreement.enabled=false"])
     rows = pq.read_table(out / "ledger.parquet").to_pylist()
     by_reason = {r["source"]: r["reasons"] for r in rows}
     assert by_reason["shard-000.tar/good"] == []

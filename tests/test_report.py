@@ -17,17 +17,24 @@ from PIL import Image
 
 from curate import __version__
 from curate.config import load_config
-from curate.ledger import COLUMNS
+from curate.decide import LEDGER_CHECK
 from curate.plan import config_sections
 from curate.report import _thresholds, write_report
 from curate.writers import summarize
 
-PLAN = [SimpleNamespace(stage=SimpleNamespace(name=s)) for s in ("inspect", "caption", "agreement", "neardup")]
+PLAN = SimpleNamespace(stages=[SimpleNamespace(name=s) for s in ("inspect", "caption", "agreement", "neardup")])
 HOSTILE = '<script>alert("kiln")</script> teapot & "mug"'
+COLUMNS = [
+    ("sample_id", pa.string()), ("source", pa.string()), ("caption", pa.string()), ("kept", pa.bool_()),
+    ("reasons", pa.list_(pa.string())), ("flags", pa.list_(pa.string())), ("width", pa.int32()),
+    ("height", pa.int32()), ("agreement", pa.float32()), ("group_id", pa.string()), ("split", pa.string()),
+    ("stopped_at", pa.string()), ("decoded", pa.bool_()), ("checks", pa.list_(LEDGER_CHECK)),
+]
 
 
-def _chk(stage, code, value, threshold, failed, action="drop"):
-    return {"stage": stage, "code": code, "value": value, "threshold": threshold, "failed": failed, "action": action}
+def _chk(stage, code, value, threshold, op, unit, failed, action="drop"):
+    return {"stage": stage, "code": code, "status": "fail" if failed else "pass", "action": action,
+            "detail": None, "value": value, "threshold": threshold, "op": op, "unit": unit, "failed": failed}
 
 
 def _row(i, kept, *, reasons=(), flags=(), w=768, h=768, agreement=0.31, group=None, split=None, caption=None,
@@ -37,7 +44,8 @@ def _row(i, kept, *, reasons=(), flags=(), w=768, h=768, agreement=0.31, group=N
             "kept": kept, "reasons": list(reasons), "flags": list(flags), "width": w, "height": h,
             "agreement": agreement, "group_id": group or f"s{i:03d}", "split": split if kept else None,
             "stopped_at": stopped, "decoded": True,
-            "checks": [_chk("inspect", "short_side_small", str(min(w, h)), ">=256", min(w, h) < 256)] + list(checks)}
+            "checks": [_chk("inspect", "short_side_small", min(w, h), 256, ">=", "px", min(w, h) < 256)]
+            + list(checks)}
 
 
 def _ledger(rows):
@@ -46,7 +54,7 @@ def _ledger(rows):
 
 
 def _mixed():
-    agree = lambda v: _chk("agreement", "agreement_low", f"{v:.4g}", ">=0.28", v < 0.28)  # noqa: E731
+    agree = lambda v: _chk("agreement", "agreement_low", v, 0.28, ">=", "cosine", v < 0.28)  # noqa: E731
     rows = [
         _row(0, True, split="train", checks=[agree(0.31)], group="g1"),
         _row(1, True, split="train", checks=[agree(0.33)], flags=["face"], group="g2"),
@@ -54,15 +62,15 @@ def _mixed():
         _row(3, False, reasons=["short_side_small"], w=120, h=90, agreement=None, stopped="inspect"),
         _row(4, False, reasons=["agreement_low"], agreement=0.12, caption=HOSTILE, checks=[agree(0.12)],
              stopped="agreement"),
-        _row(5, False, reasons=["near_duplicate"], checks=[agree(0.30), _chk("neardup", "near_duplicate", "3",
-                                                                           "<=10 bits", True)],
+        _row(5, False, reasons=["duplicate"], checks=[agree(0.30), _chk("neardup", "duplicate", 3, 10, ">", "bits",
+                                                                      True)],
              group="g1", stopped="neardup"),
         _row(6, False, reasons=["caption_short"], w=2000, h=300, agreement=None, stopped="caption",
-             checks=[_chk("caption", "caption_short", "3", ">=5 chars", True)]),
+             checks=[_chk("caption", "caption_short", 3, 5, ">=", "chars", True)]),
     ]
     # Many drops for one reason, to see the examples table stop at its limit.
     rows += [_row(10 + i, False, reasons=["caption_short"], agreement=None, stopped="caption",
-                  checks=[_chk("caption", "caption_short", "2", ">=5 chars", True)]) for i in range(25)]
+                  checks=[_chk("caption", "caption_short", 2, 5, ">=", "chars", True)]) for i in range(25)]
     return _ledger(rows)
 
 
@@ -170,17 +178,14 @@ def test_examples_show_value_and_threshold_and_stop_at_the_limit(tmp_path):
     rows = page.table("examples")
     short = [r for r in rows if r[2] == "caption_short"]
     assert len(short) == 20  # 26 such drops in the ledger; the brief caps examples at 20 per reason
-    assert ["kilnworks/item-003.jpg", "short_side_small", "90", ">=256"] in [[r[0], *r[2:]] for r in rows]
-    assert any(r[2:] == ["agreement_low", "0.12", ">=0.28"] for r in rows)
+    assert ["kilnworks/item-003.jpg", "short_side_small", "90 px", ">= 256 px"] in [[r[0], *r[2:]] for r in rows]
+    assert any(r[2:] == ["agreement_low", "0.12 cosine", ">= 0.28 cosine"] for r in rows)
 
 
 def test_agreement_threshold_is_read_from_checks():
     led = _mixed()
     assert _thresholds(led.column("checks").to_pylist(), "agreement_low") == [0.28]
-    # the number after the comparison wins over other numbers in the text
-    assert _thresholds([[_chk("x", "agreement_low:percentile", "0.2", "top 30% (>=0.2615)", True)]],
-                       "agreement_low") == [0.2615]
-    assert _thresholds([[_chk("x", "agreement_low", "0.2", ">=-0.05", True)]], "agreement_low") == [-0.05]
+    assert _thresholds([[_chk("x", "agreement_low", 0.2, -0.05, ">=", "cosine", True)]], "agreement_low") == [-0.05]
 
 
 def test_same_inputs_give_identical_bytes(tmp_path):

@@ -5,19 +5,18 @@ import json
 import os
 import signal
 import subprocess
-import sys
 import time
 from pathlib import Path
 
 import pyarrow.parquet as pq
 import pytest
 
-from conftest import ROOT, make_small_corpus
 from curate import api
 from curate.errors import LockedError
-from curate.workdir import RunLock
 
-FAST = ["embed.enabled=false"]
+from conftest import ROOT, make_small_corpus
+
+FAST = ["embed.enabled=false", "agreement.enabled=false"]
 
 
 def _sets(*extra):

@@ -18,8 +18,8 @@ from typing import Any, Literal
 import numpy as np
 import pyarrow as pa
 
-from ..errors import ConfigError
 from ..checks import CHECKS_TYPE, check
+from ..errors import ConfigError
 from .base import CheckSpec, Column, ConfigView, StageContext, checks_column, stage
 
 NAME = "agreement"

@@ -15,7 +15,6 @@ import logging
 import math
 import os
 from dataclasses import dataclass, field
-from typing import Any
 
 import numpy as np
 import pyarrow as pa

@@ -19,8 +19,8 @@ from __future__ import annotations
 
 import hashlib
 import json
-import math
 import logging
+import math
 import os
 from dataclasses import dataclass, field
 from pathlib import Path
