@@ -1,19 +1,24 @@
 """The library entry points; the CLI mirrors them one to one (same parameter names)."""
 from __future__ import annotations
 
+import errno
 import json
+import os
 from pathlib import Path
 from typing import Any
 
 from .config import PipelineConfig, commented_template, load_config
-from .errors import ConfigError, InputError
+from .errors import ConfigError, InputError, OutputError
 
 
 def load(config: str | Path | None, *, input: str | None = None, sets: tuple[str, ...] | list[str] = (),
          engine: str | None = None, eval_sets: list[str] | None = None) -> PipelineConfig:
     """Resolve a pipeline config: defaults < file < sets < explicit arguments."""
+    from . import plugins
     from .plan import config_sections
 
+    first = load_config(config, sets, config_sections(), lenient=True)
+    plugins.load(first.run.plugins)
     cfg = load_config(config, sets, config_sections())
     if input is not None:
         cfg.input.path = str(Path(input).resolve())
@@ -40,7 +45,32 @@ def run(config: str | Path | None, *, out: str | Path, input: str | None = None,
     from .runner import run_pipeline
 
     cfg = load(config, input=input, sets=sets, engine=engine, eval_sets=eval_sets)
-    return run_pipeline(cfg, out, progress=progress)
+    out = Path(out)
+    check_output_dir(out)
+    try:
+        return run_pipeline(cfg, out, progress=progress)
+    except OSError as e:
+        if e.errno in _OUTPUT_ERRNOS:
+            where = e.filename or out
+            raise OutputError(f"cannot write {where}: {e.strerror or e}; free space or choose another --out") from e
+        raise
+
+
+# errno values that mean the output cannot be written (full disk, quota, read-only, permissions).
+_OUTPUT_ERRNOS = {errno.ENOSPC, errno.EDQUOT, errno.EROFS, errno.EACCES, errno.EPERM}
+
+
+def check_output_dir(out: Path) -> None:
+    """Refuse an --out that is a file, or that cannot be created or written, before any work."""
+    if out.exists() and not out.is_dir():
+        raise OutputError(f"--out {out} is an existing file; give a folder")
+    probe = out
+    while not probe.exists():
+        probe = probe.parent
+    if not probe.is_dir():
+        raise OutputError(f"--out {out}: {probe} is a file, not a folder")
+    if not os.access(probe, os.W_OK | os.X_OK):
+        raise OutputError(f"--out {out}: {probe} is not writable")
 
 
 def explain(out: str | Path, sample: str) -> dict:

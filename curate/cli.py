@@ -226,9 +226,27 @@ def main(argv: list[str] | None = None) -> int:
     except CurateError as e:
         print(f"curate: error: {e}", file=sys.stderr)
         return e.exit_code
+    except BrokenPipeError:  # the reader went away (e.g. `curate explain ... | head`)
+        _silence_stdout()
+        return 0
     except KeyboardInterrupt:
         print("curate: interrupted; re-run the same command to resume", file=sys.stderr)
         return 130
+    except Exception as e:  # noqa: BLE001 - a bug: one line, exit 3
+        print(f"curate: internal error: {type(e).__name__}: {e} (a bug in curate; please report it with the "
+              "command you ran)", file=sys.stderr)
+        return 3
+
+
+def _silence_stdout() -> None:
+    """Point stdout at /dev/null so Python's exit flush does not raise again on the closed pipe."""
+    import os
+
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+    except OSError:
+        pass
 
 
 if __name__ == "__main__":

@@ -9,13 +9,12 @@ from __future__ import annotations
 import dataclasses
 import hashlib
 import json
+import tomllib
 import types
 import typing
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Literal
-
-import tomllib
 
 from .errors import ConfigError
 
@@ -47,6 +46,9 @@ class RunConfig:
     ray_address: str = ""
     # CPUs Ray reserves per shard task; fractions let reads and tasks share small machines.
     ray_task_cpus: float = 1.0
+    # Modules that register extra stages (docs/stages.md): Python files, relative to this config
+    # file, or importable module names. They run as your own code does: list only code you trust.
+    plugins: list[str] = field(default_factory=list, metadata={"path": True})
 
 
 @dataclass
@@ -89,13 +91,37 @@ class PipelineConfig:
     def to_toml(self) -> str:
         return dump_toml(self.to_dict())
 
+    def __reduce__(self) -> tuple:
+        # Sections of plugin stages are classes of the plugin modules: a worker process imports the
+        # plugins first, then reads the sections.
+        import pickle
+
+        run = self._sections.get("run")
+        return (_unpickle, (list(getattr(run, "plugins", []) or []), pickle.dumps((self._sections, self.origin))))
+
+
+def _unpickle(plugin_list: list[str], blob: bytes) -> "PipelineConfig":
+    import pickle
+
+    from . import plugins
+
+    plugins.load(plugin_list)
+    sections, origin = pickle.loads(blob)
+    return PipelineConfig(sections, origin)
+
 
 def load_config(
     path: str | Path | None,
     sets: list[str] | tuple[str, ...] = (),
     sections: dict[str, type] | None = None,
+    *,
+    lenient: bool = False,
 ) -> PipelineConfig:
-    """Defaults < file < sets. `sections` maps section name -> dataclass (stages add theirs)."""
+    """Defaults < file < sets. `sections` maps section name -> dataclass (stages add theirs).
+
+    Relative paths in the file are relative to the file; relative paths given with `sets` (the
+    command line) are relative to the working directory. `lenient`: skip sections nobody declared
+    (used once, to read `[run] plugins` before the plugins' own sections exist)."""
     all_sections = dict(BUILTIN_SECTIONS)
     all_sections.update(sections or {})
     data: dict[str, Any] = {}
@@ -106,10 +132,17 @@ def load_config(
             data = tomllib.loads(p.read_text(encoding="utf-8"))
         except FileNotFoundError:
             raise ConfigError("config file not found", file=fname) from None
+        except IsADirectoryError:
+            raise ConfigError("expected a TOML file, got a folder", file=fname) from None
         except (tomllib.TOMLDecodeError, UnicodeDecodeError) as e:
             raise ConfigError(f"not valid TOML ({e})", file=fname) from e
+        except OSError as e:
+            raise ConfigError(f"cannot be read ({e.strerror or e})", file=fname) from e
+    from_file = _copy_tables(data)
+    given: dict[str, Any] = {}
     for s in sets:
         _apply_set(data, s)
+        _apply_set(given, s)
     built: dict[str, Any] = {}
     for name, cls in all_sections.items():
         raw = data.get(name, {})
@@ -117,28 +150,38 @@ def load_config(
             raise ConfigError(f"expected a table [{name}], got {type(raw).__name__}", file=fname, key=name)
         built[name] = _build(cls, raw, name, fname)
     unknown = sorted(set(data) - set(all_sections))
-    if unknown:
+    if unknown and not lenient:
         raise ConfigError(
             f"unknown section; expected one of: {', '.join(sorted(all_sections))}", file=fname, key=unknown[0]
         )
     cfg = PipelineConfig(built, origin=fname)
     if fname:
-        _resolve_paths(cfg, data, Path(fname).parent)
+        _resolve_paths(cfg, from_file, Path(fname).parent, skip=given)
+    _resolve_paths(cfg, given, Path.cwd())
     return cfg
 
 
-def _resolve_paths(cfg: PipelineConfig, data: dict, base: Path) -> None:
-    """Relative paths written in a config file are relative to that file.
+def _copy_tables(data: dict) -> dict:
+    return {k: (dict(v) if isinstance(v, dict) else v) for k, v in data.items()}
 
-    Path fields are `input.path` and any dataclass field with metadata {"path": True}; a value that
-    is not an existing path there (e.g. a pretrained tag like "openai") is left as written.
+
+def _resolve_paths(cfg: PipelineConfig, data: dict, base: Path, skip: dict | None = None) -> None:
+    """Make relative paths that `data` set absolute against `base` (skipping keys that `skip` overrides).
+
+    Path fields are `input.path` and any dataclass field with metadata {"path": True}; for the latter,
+    a value that is not an existing path there (e.g. a pretrained tag like "openai") is left as written.
     """
-    if cfg.input.path and not Path(cfg.input.path).is_absolute():
+    skip = skip or {}
+
+    def own(section: str, key: str) -> bool:
+        return key in (data.get(section) or {}) and key not in (skip.get(section) or {})
+
+    if own("input", "path") and cfg.input.path and not Path(cfg.input.path).is_absolute():
         cfg.input.path = str((base / cfg.input.path).resolve())
     for name in cfg.names():
         obj = cfg.section(name)
         for f in dataclasses.fields(obj):
-            if not f.metadata.get("path") or f.name not in data.get(name, {}):
+            if not f.metadata.get("path") or not own(name, f.name):
                 continue
             value = getattr(obj, f.name)
 

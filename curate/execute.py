@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 import pyarrow as pa
 
-from . import layout, workdir
+from . import layout, plugins, workdir
 from .checks import CHECKS_TYPE
 from .errors import StageError
 from .stages import REGISTRY, StageContext
@@ -53,6 +53,7 @@ class Task:
 
 def execute(task: Task, progress: Any = None) -> int:
     """Run a task's stages in order; returns the rows processed."""
+    plugins.load(task.config.run.plugins)  # a worker process registers plugin stages before it runs them
     where = "+".join(r.name for r in task.runs)
     base = layout.assemble(task.parts, where)
     transient = any(c.transient for r in task.runs for c in _columns(r, task.config))

@@ -34,10 +34,25 @@ class PlanError(ConfigError):
 
 
 def config_sections() -> dict[str, type]:
-    """Every config section a pipeline file may have: the stages' and the extra ones."""
+    """Every config section a pipeline file may have: the stages' in run order, then the extra ones."""
+    from .config import BUILTIN_SECTIONS
+
+    raw: dict[str, type] = {st.config_section: st.config_cls for st in REGISTRY.values()}
+    raw.update(SECTIONS)
+    defaults = PipelineConfig({**{k: c() for k, c in BUILTIN_SECTIONS.items()}, **{k: c() for k, c in raw.items()}})
+    stages = list(REGISTRY.values())
+    try:
+        providers = {c.name: st.name for st in stages for c in st.columns(st.view(defaults))}
+        deps = {st.name: {providers[c] for c in st.needed(st.view(defaults)) if c in providers} - {st.name}
+                for st in stages}
+        stages = _order(stages, deps)
+    except Exception:  # noqa: BLE001 - a stage that cannot describe itself at defaults: registry order
+        pass
     out: dict[str, type] = {}
-    for st in REGISTRY.values():
+    for st in sorted(stages, key=lambda st: st.name != st.config_section):  # a section sits at its own stage
         out.setdefault(st.config_section, st.config_cls)
+    order = [st.name for st in stages]
+    out = dict(sorted(out.items(), key=lambda kv: order.index(kv[0]) if kv[0] in order else len(order)))
     out.update(SECTIONS)
     return out
 
