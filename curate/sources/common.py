@@ -107,6 +107,8 @@ class Scope:
             st = os.stat(locator)
         except (OSError, ValueError):
             return "unreadable", None, None, locator
+        if stat.S_ISDIR(st.st_mode):
+            return "unreadable", None, None, ""
         if not stat.S_ISREG(st.st_mode):
             return "special_file", None, None, ""
         if st.st_size > self.max_bytes:
