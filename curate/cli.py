@@ -13,6 +13,8 @@ from typing import Any
 
 from . import __version__
 from .errors import CurateError
+from .terminal import escape as _e
+from .terminal import log_to_stderr
 
 
 def _cmd_run(a: argparse.Namespace) -> int:
@@ -30,23 +32,23 @@ def _cmd_run(a: argparse.Namespace) -> int:
     for names, kind, secs in res.passes:
         ran, reused = res.ran.get(names[0], 0), res.reused.get(names[0], 0)
         what = f"computed {ran}, reused {reused} shard(s)" if kind == "shard" else ("computed" if ran else "reused")
-        label = ", ".join(names)
+        label = _e(", ".join(names))
         print(f"  {label:<32}{secs:7.2f}s  {what}")
     print(f"  {'outputs':<32}{res.seconds.get('pack', 0.0):7.2f}s  ledger, shards, manifest, summary, report")
     for note in res.notes:
-        print(f"note: {note}")
+        print(f"note: {_e(note)}")
     print(f"kept {summary['kept']} of {summary['samples']} ({100 * summary['kept_fraction']:.1f}%)")
     if summary["by_reason"]:
         print("drops by reason (a sample may have several):")
         for code, n in summary["by_reason"].items():
-            print(f"  {code:<22} {n}")
+            print(f"  {_e(code):<22} {n}")
     if summary["by_flag"]:
         print("flags (for human review):")
         for code, n in summary["by_flag"].items():
-            print(f"  {code:<22} {n}")
+            print(f"  {_e(code):<22} {n}")
     if summary.get("by_split"):
         print("split: " + ", ".join(f"{k} {v}" for k, v in sorted(summary["by_split"].items())))
-    out = res.out_dir
+    out = _e(res.out_dir)
     print(f"shards:   {out}/shards/\nledger:   {out}/ledger.parquet\nsummary:  {out}/summary.json\n"
           f"report:   {out}/report.html")
     if res.cleared_stale_lock:
@@ -62,13 +64,13 @@ def _cmd_explain(a: argparse.Namespace) -> int:
         print(json.dumps(info, default=str))
         return 0
     verdict = "KEPT" if info["kept"] else "DROPPED"
-    print(f"sample  {info['sample_id']}  {info['source']}")
+    print(f"sample  {_e(info['sample_id'])}  {_e(info['source'])}")
     print(f"caption {_short(info['caption'], 100)!s}")
-    print(f"size    {info['width']}x{info['height']}  format {info['format']}  bytes {info['file_bytes']}")
-    print(f"verdict {verdict}" + (f"  reasons: {', '.join(info['reasons'])}" if info["reasons"] else "")
-          + (f"  flags: {', '.join(info['flags'])}" if info["flags"] else ""))
+    print(f"size    {info['width']}x{info['height']}  format {_e(info['format'])}  bytes {info['file_bytes']}")
+    print(f"verdict {verdict}" + (f"  reasons: {_e(', '.join(info['reasons']))}" if info["reasons"] else "")
+          + (f"  flags: {_e(', '.join(info['flags']))}" if info["flags"] else ""))
     if info.get("split"):
-        print(f"split   {info['split']}")
+        print(f"split   {_e(info['split'])}")
     print()
     print(f"{'stage':<16}{'check':<22}{'value':<30}{'passes when':<18}verdict")
     for c in info["checks"]:
@@ -76,19 +78,19 @@ def _cmd_explain(a: argparse.Namespace) -> int:
         if c["status"] == "fail":
             v += f" -> {c['action']}"
         value = c["value_text"] if c["value"] is None or not c["detail"] else f"{c['value_text']} ({c['detail']})"
-        print(f"{c['stage']:<16}{_short(c['code'], 21):<22}{_short(value, 29):<30}"
+        print(f"{_e(c['stage']):<16}{_short(c['code'], 21):<22}{_short(value, 29):<30}"
               f"{_short(c['condition'], 17):<18}{v}")
     if info["group"]:
-        print(f"\nnear-duplicate group {info['group_id']} ({len(info['group'])} members):")
+        print(f"\nnear-duplicate group {_e(info['group_id'])} ({len(info['group'])} members):")
         for m in info["group"]:
             mark = "kept   " if m["kept"] else "dropped"
             d = "" if m["dup_of"] is None else f" dup of {m['dup_of']} by {m['dup_signal']} at {m['dup_distance']}"
-            print(f"  {mark} {m['sample_id']} {m['source']} {m['width']}x{m['height']}{d}")
+            print(f"  {mark} {_e(m['sample_id'])} {_e(m['source'])} {m['width']}x{m['height']}{_e(d)}")
     return 0
 
 
 def _short(v: Any, n: int) -> str:
-    s = "" if v is None else str(v)
+    s = "" if v is None else _e(v)
     return s if len(s) <= n else s[: n - 1] + "…"
 
 
@@ -99,11 +101,11 @@ def _cmd_status(a: argparse.Namespace) -> int:
     if a.json:
         print(json.dumps(st))
         return 0
-    print(f"{a.out}: {'running' if st['running'] else ('finished' if st.get('finished') else 'not finished')}")
+    print(f"{_e(a.out)}: {'running' if st['running'] else ('finished' if st.get('finished') else 'not finished')}")
     for name, s in st.get("stages", {}).items():
-        print(f"  {name:<16} {s['kind']:<7} computed {s['ran']}, reused {s['reused']}, {s['seconds']}s")
+        print(f"  {_e(name):<16} {s['kind']:<7} computed {s['ran']}, reused {s['reused']}, {s['seconds']}s")
     for name, ok in st["outputs"].items():
-        print(f"  {name:<16} {'present' if ok else 'missing'}")
+        print(f"  {_e(name):<16} {'present' if ok else 'missing'}")
     return 0
 
 
@@ -111,7 +113,7 @@ def _cmd_init(a: argparse.Namespace) -> int:
     from . import api
 
     p = api.init(a.path, preset=a.preset, force=a.force)
-    print(f"wrote {p}")
+    print(f"wrote {_e(p)}")
     return 0
 
 
@@ -182,7 +184,7 @@ def _cmd_leakcheck(a: argparse.Namespace) -> int:
         return 1 if pairs else 0
     for p in pairs:
         d = f"cosine {p['cosine']}" if p["signal"] == "semantic" else f"{p['distance']:>2} bits"
-        print(f"{d}  {p['a']}  <->  {p['b']}")
+        print(f"{d}  {_e(p['a'])}  <->  {_e(p['b'])}")
     for side in ("a", "b"):
         if res[f"{side}_unreadable"]:
             print(f"note: {len(res[side + '_unreadable'])} image(s) of {side.upper()} could not be decoded")
@@ -191,7 +193,7 @@ def _cmd_leakcheck(a: argparse.Namespace) -> int:
           + (f" or cosine >= {res['semantic']}" if res["semantic"] else "")
           + f"; A {res['a_count']} images, B {res['b_count']} images; {res['seconds']:.2f}s")
     if a.html:
-        print(f"page:     {a.html}")
+        print(f"page:     {_e(a.html)}")
     return 1 if pairs else 0
 
 
@@ -218,13 +220,14 @@ def _add_leakcheck(sub: Any) -> None:
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
     a = parser.parse_args(argv)
+    log_to_stderr()
     if not getattr(a, "func", None):
         parser.print_help()
         return 2
     try:
         return a.func(a)
     except CurateError as e:
-        print(f"curate: error: {e}", file=sys.stderr)
+        print(f"curate: error: {_e(e)}", file=sys.stderr)
         return e.exit_code
     except BrokenPipeError:  # the reader went away (e.g. `curate explain ... | head`)
         _silence_stdout()

@@ -33,6 +33,10 @@ class InputConfig:
     id_column: str = ""
     # Samples per work shard; the unit of parallel work and of resume (common practice: 1k-10k).
     shard_size: int = 500
+    # Largest image file read (bytes; larger: file_too_large): 2**28 = uncompressed 8-bit RGB at Pillow's MAX_IMAGE_PIXELS.
+    max_file_bytes: int = 1 << 28
+    # Follow links and manifest paths that resolve outside the input root (off: they get outside_root; common practice).
+    allow_outside_root: bool = False
 
 
 @dataclass

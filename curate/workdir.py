@@ -202,49 +202,98 @@ def clean_temp_files(root: str | Path) -> int:
 class RunLock:
     """An exclusive lock on an output directory: one live run at a time.
 
-    The lock file holds host, pid and start time. A lock whose process is gone
-    (same host, pid not alive) is stale: it is cleared and taken.
+    The holder keeps an advisory lock (flock) on `DIR/.curate.lock` for the
+    whole run, so taking it is atomic and the kernel drops it when the holder
+    dies, however it dies. The file also names the holder (host, pid, start
+    time) for the "in use" message. A clean release deletes the file while
+    still locked; a file left behind by a killed run is stale and is taken
+    over (`cleared_stale`). A file naming a live holder that holds no lock
+    (another host's run, where locks may not be shared) is respected.
     """
+
+    # How long to wait for a holder that has the lock but has not yet written its name (seconds;
+    # writing it takes microseconds, so this only matters on a stalled machine).
+    NAME_WAIT_S = 2.0
 
     def __init__(self, out_dir: str | Path):
         self.path = Path(out_dir) / ".curate.lock"
         self.cleared_stale = False
+        self._fd: int | None = None
 
     def acquire(self) -> "RunLock":
-        self.path.parent.mkdir(parents=True, exist_ok=True)
-        for _ in range(2):
-            try:
-                fd = os.open(self.path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
-            except FileExistsError:
-                holder = self._holder()
-                if holder is not None and self._alive(holder):
-                    raise LockedError(
-                        f"{self.path.parent} is in use by a running curate (pid {holder.get('pid')} on "
-                        f"{holder.get('host')}); wait for it or use another --out"
-                    ) from None
-                try:
-                    self.path.unlink()
-                    self.cleared_stale = True
-                except FileNotFoundError:
-                    pass
-                continue
-            with os.fdopen(fd, "w") as f:
-                json.dump({"host": socket.gethostname(), "pid": os.getpid(), "started": time.time()}, f)
+        import fcntl
+
+        if self._fd is not None:
             return self
-        raise LockedError(f"could not take the lock {self.path}")
+        self.path.parent.mkdir(parents=True, exist_ok=True)
+        deadline = time.monotonic() + self.NAME_WAIT_S
+        while True:
+            fd = os.open(self.path, os.O_RDWR | os.O_CREAT | os.O_CLOEXEC, 0o644)
+            try:
+                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            except BlockingIOError:
+                os.close(fd)
+                holder = self._holder()
+                if (holder is not None and self._alive(holder)) or time.monotonic() > deadline:
+                    raise LockedError(self._in_use(holder)) from None
+                time.sleep(0.01)  # taken a moment ago and not yet named, or a status probe: look again
+                continue
+            except OSError as e:
+                os.close(fd)
+                raise LockedError(f"cannot lock {self.path} ({e.strerror or e}); the output folder's file "
+                                  "system must support file locks") from e
+            if not self._is_current(fd):  # released (deleted) between our open and our lock: start over
+                os.close(fd)
+                continue
+            holder = _parse_holder(_read_fd(fd))
+            if holder is not None and self._alive(holder):
+                fcntl.flock(fd, fcntl.LOCK_UN)
+                os.close(fd)
+                raise LockedError(self._in_use(holder))
+            self.cleared_stale = holder is not None or self.cleared_stale
+            me = json.dumps({"host": socket.gethostname(), "pid": os.getpid(), "started": time.time()}).encode()
+            os.ftruncate(fd, 0)
+            os.pwrite(fd, me, 0)
+            os.fsync(fd)
+            self._fd = fd
+            return self
 
     def release(self) -> None:
+        import fcntl
+
+        fd, self._fd = self._fd, None
+        if fd is None:
+            return
         try:
-            holder = self._holder()
-            if holder and holder.get("pid") == os.getpid():
-                self.path.unlink()
-        except FileNotFoundError:
+            if self._is_current(fd):
+                self.path.unlink()  # while still locked, so no one can take a file on its way out
+        except OSError:
             pass
+        finally:
+            fcntl.flock(fd, fcntl.LOCK_UN)
+            os.close(fd)
 
     def held(self) -> bool:
         """True when a live run holds this lock now."""
-        holder = self._holder() if self.path.exists() else None
-        return bool(holder and self._alive(holder))
+        import fcntl
+
+        try:
+            fd = os.open(self.path, os.O_RDONLY | os.O_CLOEXEC)
+        except OSError:
+            return False
+        try:
+            try:
+                fcntl.flock(fd, fcntl.LOCK_SH | fcntl.LOCK_NB)
+            except BlockingIOError:
+                return True
+            except OSError:
+                pass
+            else:
+                fcntl.flock(fd, fcntl.LOCK_UN)
+            holder = _parse_holder(_read_fd(fd))
+            return bool(holder and self._alive(holder))
+        finally:
+            os.close(fd)
 
     def __enter__(self) -> "RunLock":
         return self.acquire()
@@ -252,11 +301,23 @@ class RunLock:
     def __exit__(self, *exc: Any) -> None:
         self.release()
 
+    def _is_current(self, fd: int) -> bool:
+        try:
+            return os.path.samestat(os.fstat(fd), os.stat(self.path))
+        except OSError:
+            return False
+
     def _holder(self) -> dict | None:
         try:
-            return json.loads(self.path.read_text())
-        except (OSError, ValueError):
+            return _parse_holder(self.path.read_bytes())
+        except OSError:
             return None
+
+    def _in_use(self, holder: dict | None) -> str:
+        if holder is None:
+            return f"{self.path.parent} is in use by another curate run; wait for it or use another --out"
+        return (f"{self.path.parent} is in use by a running curate (pid {holder.get('pid')} on {holder.get('host')}); "
+                f"wait for it or use another --out (if no such run is alive, delete {self.path})")
 
     @staticmethod
     def _alive(holder: dict) -> bool:
@@ -280,3 +341,16 @@ class RunLock:
             return b"curate" in cmd or b"python" in cmd or b"pytest" in cmd
         except OSError:
             return True
+
+
+def _read_fd(fd: int) -> bytes:
+    return os.pread(fd, 4096, 0)
+
+
+def _parse_holder(data: bytes) -> dict | None:
+    """The holder named in a lock file, or None when it names none (empty, partly written, not ours)."""
+    try:
+        obj = json.loads(data.decode("utf-8"))
+    except (UnicodeDecodeError, ValueError):
+        return None
+    return obj if isinstance(obj, dict) and "host" in obj and "pid" in obj else None

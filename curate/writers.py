@@ -216,7 +216,7 @@ def _write_shards(cfg: PipelineConfig, out: Path, plan: Plan, joined: pa.Table,
         items = by_split[name]
         for start in range(0, len(items), 256):
             chunk = items[start:start + 256]
-            for j, raw in zip(chunk, read_bytes([locs[j] for j in chunk])):
+            for j, raw in zip(chunk, read_bytes([locs[j] for j in chunk], max_bytes=cfg.input.max_file_bytes)):
                 why = _verify(raw, shas[j])
                 if why is not None:
                     changed[int(kept[j])] = why

@@ -9,6 +9,7 @@ runs in the global `caption_repeats` stage below.
 """
 from __future__ import annotations
 
+import html
 import re
 import unicodedata
 from dataclasses import dataclass, field
@@ -16,6 +17,7 @@ from dataclasses import dataclass, field
 import pyarrow as pa
 
 from ..checks import CHECKS_TYPE, check
+from ..sources.base import CAPTION_PROBLEMS
 from .base import CheckSpec, Column, StageContext, checks_column, stage
 
 NAME = "caption"
@@ -63,8 +65,7 @@ COLUMNS = (
 )
 
 CHECKS = (
-    CheckSpec("caption_missing", "drop", "no caption sidecar, field or cell"),
-    CheckSpec("caption_unreadable", "drop", "the caption file could not be read or parsed"),
+    *(CheckSpec(code, "drop", help) for code, help in CAPTION_PROBLEMS.items()),
     CheckSpec("caption_empty", "drop", "the caption is empty after normalisation"),
     CheckSpec("caption_short", "drop", "fewer characters than the minimum"),
     CheckSpec("caption_long", "drop", "more characters than the maximum"),
@@ -106,14 +107,43 @@ def decode_caption(raw: bytes) -> tuple[str, bool]:
         return raw.decode("latin-1"), True
 
 
+# An HTML character reference with its closing ';' (HTML Living Standard, "character references"):
+# named (&eacute;), decimal (&#233;) or hexadecimal (&#xE9;). Without the ';' it is left as text.
+_CHAR_REF = re.compile(r"&(?:#[0-9]{1,7}|#[xX][0-9a-fA-F]{1,6}|[A-Za-z][A-Za-z0-9]{1,31});")
+_MARKUP = re.compile(r"[<>]")
+
+
+def _decode_ref(m: re.Match) -> str:
+    ref = m.group()
+    text = html.unescape(ref)
+    return ref if _MARKUP.search(text) else text
+
+
+def decode_entities(text: str) -> str:
+    """HTML character references -> the characters they name, except any that would give `<` or `>`
+    (`&lt;`, `&#60;`, `&GT;`, ...): those stay as written, so decoding never creates markup.
+
+    Repeated until nothing changes, so double-escaped text (`&amp;amp;`) reads `&`; each pass
+    shortens the text, so this ends.
+    """
+    while True:
+        decoded = _CHAR_REF.sub(_decode_ref, text)
+        if decoded == text:
+            return text
+        text = decoded
+
+
 def normalize(text: str) -> str:
-    """ftfy repair, NFC, control characters removed, whitespace collapsed."""
+    """Entity decoding (decode_entities), ftfy repair, NFC, control characters removed, whitespace collapsed.
+
+    ftfy's own entity decoding is off: it would turn `&lt;script&gt;` into `<script>`.
+    """
     import ftfy
 
     for _ in range(3):  # ftfy repairs one layer of mojibake at a time; stop at a fixed point
         before = text
-        text = _CONTROL.sub(" ", text)
-        text = ftfy.fix_text(text, normalization="NFC")
+        text = decode_entities(_CONTROL.sub(" ", text))
+        text = ftfy.fix_text(text, normalization="NFC", unescape_html=False)
         text = unicodedata.normalize("NFC", _CONTROL.sub(" ", text))
         text = _SPACE.sub(" ", text).strip()
         if text == before:

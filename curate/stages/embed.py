@@ -137,8 +137,9 @@ class ImageChunks:
     """Work items for decode workers: item i = (i, pixels [n, H, W, 3] uint8, errors [n])."""
 
     def __init__(self, locators: list[str], steps: list, size_hw: tuple[int, int], draft_px: int,
-                 chunk: int = CHUNK):
+                 chunk: int = CHUNK, max_bytes: int | None = None):
         self.locators = locators
+        self.max_bytes = max_bytes
         self.steps = steps
         self.size_hw = size_hw
         self.draft_px = draft_px
@@ -153,7 +154,7 @@ class ImageChunks:
         locs = self.locators[i * self.chunk:(i + 1) * self.chunk]
         pixels = np.zeros((len(locs), self.size_hw[0], self.size_hw[1], 3), dtype=np.uint8)
         errors: list[str | None] = [None] * len(locs)
-        for j, data in enumerate(read_bytes(locs)):
+        for j, data in enumerate(read_bytes(locs, max_bytes=self.max_bytes)):
             try:
                 arr = decode_for_model(data, self.steps, self.draft_px)
                 if arr.shape != pixels.shape[1:]:
@@ -192,7 +193,7 @@ def iter_chunks(dataset: ImageChunks, workers: int):
         yield int(i), np.asarray(pixels), list(errors)
 
 
-@stage(name=NAME, version=VERSION, config=EmbedConfig, kind="shard", phase="model", alive_only=True,
+@stage(name=NAME, version=VERSION, config=EmbedConfig, kind="shard", phase="model", alive_only=True, sections=("input",),
        needs=("locator", "caption", "decoded"), wants=("sha256",), provides=columns, checks=CHECKS,
        parallel="inline", identity=lambda view: identity(view))
 def run(table: pa.Table, cfg: EmbedConfig, ctx: StageContext) -> pa.Table:
@@ -234,7 +235,8 @@ def run(table: pa.Table, cfg: EmbedConfig, ctx: StageContext) -> pa.Table:
     torch.set_num_threads(cfg.threads or available_cores())
     try:
         draft_px = DRAFT_MARGIN * max(lm.image_size) if cfg.jpeg_draft else 0
-        dataset = ImageChunks(image_locs, lm.pil_steps(), lm.image_size, draft_px)
+        dataset = ImageChunks(image_locs, lm.pil_steps(), lm.image_size, draft_px,
+                              max_bytes=ctx.config.section("input").max_file_bytes)
         workers = decode_worker_count(cfg, lm.device) if len(image_locs) > cfg.batch_size else 0
         chunks = iter_chunks(dataset, workers)  # workers start decoding on the first next()
         first = next(chunks, None)

@@ -19,6 +19,7 @@ import pyarrow as pa
 
 from ..checks import CHECKS_TYPE, check
 from ..imaging import decoded
+from ..sources.base import SOURCE_PROBLEMS
 from .base import CheckSpec, Column, StageContext, checks_column, stage
 
 NAME = "inspect"
@@ -54,8 +55,7 @@ class InspectConfig:
 # An image that cannot be decoded cannot be trained on: these codes can only drop.
 _DROP = ("drop",)
 CHECKS = (
-    CheckSpec("unsafe_path", "drop", "archive member name is absolute or climbs out with '..'", _DROP),
-    CheckSpec("unreadable", "drop", "the image file could not be read", _DROP),
+    *(CheckSpec(code, "drop", help, _DROP) for code, help in SOURCE_PROBLEMS.items()),
     CheckSpec("file_empty", "drop", "the image file has zero bytes", _DROP),
     CheckSpec("not_image", "drop", "the bytes are not an image format Pillow knows", _DROP),
     CheckSpec("truncated", "drop", "the image data ends early", _DROP),
@@ -233,7 +233,7 @@ def _decode(img: Any, cols: dict, checks: list[dict], cfg: InspectConfig) -> tup
     return cols, checks, rgb
 
 
-@stage(name=NAME, version=VERSION, config=InspectConfig, kind="shard", phase="check",
+@stage(name=NAME, version=VERSION, config=InspectConfig, kind="shard", phase="check", sections=("input",),
        needs=("locator", "source_problem"), provides=COLUMNS, checks=CHECKS,
        identity=lambda view: identity())
 def run(table: pa.Table, cfg: InspectConfig, ctx: StageContext) -> pa.Table:
@@ -245,7 +245,8 @@ def run(table: pa.Table, cfg: InspectConfig, ctx: StageContext) -> pa.Table:
     locators = table.column("locator").to_pylist()
     problems = table.column("source_problem").to_pylist()
     todo = [i for i, p in enumerate(problems) if p is None]
-    datas: dict[int, bytes | Exception] = dict(zip(todo, read_bytes([locators[i] for i in todo])))
+    cap = ctx.config.section("input").max_file_bytes
+    datas: dict[int, bytes | Exception] = dict(zip(todo, read_bytes([locators[i] for i in todo], max_bytes=cap)))
     for i in range(table.num_rows):
         if problems[i] is not None:
             cols: dict[str, Any] = {c.name: None for c in _BASE_FIELDS}
