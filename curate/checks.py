@@ -28,6 +28,10 @@ CHECK_TYPE = pa.struct(
 )
 CHECKS_TYPE = pa.list_(CHECK_TYPE)
 
+# What a failed check can do to its sample (curate.decide): drop it, flag it for review, ignore it,
+# send it to the quarantine shards, or redact what it found in the output.
+ACTIONS = ("drop", "flag", "keep", "quarantine", "redact")
+
 # Pass conditions a record may state.
 OPS = {">=": operator.ge, "<=": operator.le, ">": operator.gt, "<": operator.lt, "==": operator.eq,
        "!=": operator.ne}

@@ -9,6 +9,7 @@ from __future__ import annotations
 import dataclasses
 import hashlib
 import json
+import math
 import tomllib
 import types
 import typing
@@ -16,6 +17,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Literal
 
+from .checks import ACTIONS
 from .errors import ConfigError
 
 
@@ -38,6 +40,12 @@ class InputConfig:
     # Follow links and manifest paths that resolve outside the input root (off: they get outside_root; common practice).
     allow_outside_root: bool = False
 
+    def validate(self) -> None:
+        if self.shard_size < 1:
+            raise ValueError(f"shard_size must be >= 1, got {self.shard_size}")
+        if self.max_file_bytes < 1:
+            raise ValueError(f"max_file_bytes must be >= 1, got {self.max_file_bytes}")
+
 
 @dataclass
 class RunConfig:
@@ -54,11 +62,24 @@ class RunConfig:
     # file, or importable module names. They run as your own code does: list only code you trust.
     plugins: list[str] = field(default_factory=list, metadata={"path": True})
 
+    def validate(self) -> None:
+        if self.workers < 0:
+            raise ValueError(f"workers must be >= 0 (0 = one per CPU core), got {self.workers}")
+        if not self.ray_task_cpus > 0:
+            raise ValueError(f"ray_task_cpus must be > 0, got {self.ray_task_cpus}")
+
 
 @dataclass
 class DecideConfig:
-    # Per reason code, override its default action: "drop", "flag" or "keep" (ignore).
+    # Per reason code (e.g. "pii:email") or code family (e.g. "pii"), override its default action:
+    # "drop", "flag" (keep and mark for review), "keep" (ignore), and where the code allows them
+    # "quarantine" or "redact".
     actions: dict[str, str] = field(default_factory=dict)
+
+    def validate(self) -> None:
+        for code, act in self.actions.items():
+            if act not in ACTIONS:
+                raise ValueError(f"action {act!r} for {code} is not one of {', '.join(ACTIONS)}")
 
 
 BUILTIN_SECTIONS: dict[str, type] = {"input": InputConfig, "run": RunConfig, "decide": DecideConfig}
@@ -248,6 +269,9 @@ def _coerce(v: Any, tp: Any, fname: str | None, key: str) -> Any:
     if origin in (typing.Union, types.UnionType):
         if v is None and type(None) in args:
             return None
+        real = [a for a in args if a is not type(None)]
+        if len(real) == 1:
+            return _coerce(v, real[0], fname, key)
         errs = []
         for a in args:
             if a is type(None):
@@ -272,6 +296,8 @@ def _coerce(v: Any, tp: Any, fname: str | None, key: str) -> Any:
     if tp is float:
         if isinstance(v, bool) or not isinstance(v, (int, float)):
             raise bad("a number")
+        if not math.isfinite(v):
+            raise bad("a finite number")
         return float(v)
     if tp is str:
         if not isinstance(v, str):

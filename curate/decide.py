@@ -15,9 +15,9 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from .checks import family
+from .checks import ACTIONS, family
 from .errors import ConfigError
-from .stages.base import ACTIONS, CheckSpec, spec_for
+from .stages.base import CheckSpec, spec_for
 
 # Actions under which a failed check keeps the sample but marks it.
 MARKING = ("flag", "quarantine", "redact")
@@ -32,7 +32,11 @@ class Actions:
         for key, act in self.overrides.items():
             spec = spec_for(key, specs)
             if spec is None:
-                raise ConfigError(f"unknown reason code {key!r}; known codes: {', '.join(sorted(specs))}",
+                import difflib
+
+                near = difflib.get_close_matches(key, list(specs), n=1)
+                hint = f"did you mean {near[0]!r}? " if near else ""
+                raise ConfigError(f"unknown reason code {key!r}; {hint}known codes: {', '.join(sorted(specs))}",
                                   key=f"decide.actions.{key}")
             if act not in spec.allowed:
                 raise ConfigError(f"action {act!r} is not one of {', '.join(spec.allowed)} for {key}",

@@ -19,7 +19,7 @@ import pyarrow as pa
 
 from . import layout, plugins, workdir
 from .checks import CHECKS_TYPE
-from .errors import StageError
+from .errors import CurateError, StageError
 from .stages import REGISTRY, StageContext
 
 # Rows per chunk in a pass that decodes images (bounded memory: a few full-size images at a time).
@@ -95,6 +95,8 @@ def call_stage(name: str, table: pa.Table, config: Any, rows: list[int] | None =
     shard = ctx_kw.get("shard")
     try:
         res = st.fn(sub, view.section(st.config_section), ctx) if sub.num_rows else None
+    except CurateError:
+        raise  # a named error (a model that cannot load, a bad eval set) says what to do itself
     except Exception as e:
         raise StageError(f"{type(e).__name__}: {e}", stage=name, shard=shard) from e
     res = _conform(res, sub, st, view, shard or "")

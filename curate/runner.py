@@ -24,7 +24,7 @@ from . import decide, layout, workdir
 from .checks import CHECKS_TYPE
 from .config import PipelineConfig
 from .engines import make_engine
-from .errors import StageError
+from .errors import InputError, StageError
 from .execute import StageRun, Task, execute
 from .layout import InputRef, output_path
 from .plan import SOURCE, Pass, Plan, PlannedStage, build_plan, shard_fingerprint
@@ -52,6 +52,7 @@ class RunResult:
     passes: list[tuple[list[str], str, float]] = field(default_factory=list)  # (stages, kind, seconds)
     cleared_stale_lock: bool = False
     repaired: list[str] = field(default_factory=list)  # damaged work files that were recomputed
+    changed_rows: list[int] = field(default_factory=list)  # samples whose bytes changed after inspection
     notes: list[str] = field(default_factory=list)
 
 
@@ -62,7 +63,9 @@ class _Work:
                  offsets: dict[str, tuple[int, int]], actions: decide.Actions):
         self.work, self.plan, self.shards = work, plan, shards
         self.src_fp, self.offsets, self.actions = src_fp, offsets, actions
-        self.fps: dict[str, Any] = {}  # stage -> {shard: fp} or fp
+        self.fps: dict[str, Any] = {}  # stage -> {shard: fingerprint} or fingerprint
+        self.content: dict[str, Any] = {}  # stage -> {shard: content digest} or content digest
+        self.pass_of: dict[str, int] = {n: i for i, p in enumerate(plan.passes) for n in p.names}
         self.kind = {ps.name: ps.stage.kind for ps in plan.stages}
         self.done: list[str] = []  # stages finished so far, in plan order
 
@@ -88,13 +91,24 @@ class _Work:
         return [self.ref(s, shard, tuple(cols)) for s, cols in by_stage.items()]
 
     def input_fp(self, ps: PlannedStage, shard: str | None) -> list[Any]:
+        """What a stage's output depends on: for inputs computed in the same pass, their fingerprints
+        (they are recomputed together); for earlier passes, the content digests of their outputs, so
+        an input recomputed with different content is never paired with a stale consumer."""
         out: list[Any] = []
         for name in ps.inputs:
             if name == SOURCE:
                 continue
-            fp = self.fps[name]
+            src = self.fps if self.pass_of[name] == self.pass_of[ps.name] else self.content
+            fp = src[name]
             out.append(fp if isinstance(fp, str) else (fp[shard] if shard else [fp[s] for s in self.shards]))
         return out
+
+    def record_content(self, stage: str) -> None:
+        """Read the content digests of a finished stage's outputs (from the files' footers)."""
+        if self.kind[stage] == "global":
+            self.content[stage] = workdir.content_digest(self.path(stage, None))
+        else:
+            self.content[stage] = {s: workdir.content_digest(self.path(stage, s)) for s in self.shards}
 
     def check_columns(self, shard: str, stages: list[str]) -> list[pa.ChunkedArray]:
         cols = []
@@ -107,8 +121,8 @@ class _Work:
 def run_pipeline(cfg: PipelineConfig, out_dir: str | Path, *, progress: Progress | None = None,
                  engine: Any = None) -> RunResult:
     progress = progress or NullProgress()
-    plan = build_plan(cfg)  # a config that cannot run is refused here, before any work
     actions = decide.Actions(all_checks(), cfg.decide.actions)
+    plan = build_plan(cfg)  # a config that cannot run is refused here, before any work
     out = Path(out_dir)
     lock = workdir.RunLock(out).acquire()
     try:
@@ -125,6 +139,9 @@ def _run_locked(cfg: PipelineConfig, plan: Plan, actions: decide.Actions, out: P
     work = out / "work"
     t0 = time.perf_counter()
     src = list_samples(cfg.input)
+    if src.num_rows == 0:
+        raise InputError(f"input {cfg.input.path} holds no samples (no image files, manifest rows or archive "
+                         "members); check --input")
     size = cfg.input.shard_size
     shards = layout.shard_names(max(1, -(-src.num_rows // size)))
     result = RunResult(out_dir=str(out), samples=src.num_rows, shards=len(shards), cleared_stale_lock=cleared)
@@ -159,12 +176,22 @@ def _run_locked(cfg: PipelineConfig, plan: Plan, actions: decide.Actions, out: P
                 for p in plan.passes:
                     _run_pass(p, w, cfg, eng, progress, result, state)
         result.seconds["pack"] = time.perf_counter() - t2
+        _forget_changed(w, result.changed_rows, size)
     finally:
         if engine is None:
             eng.close()
     state["finished"] = True
     workdir.write_json(work / "state.json", state)
     return result
+
+
+def _forget_changed(w: _Work, rows: list[int], size: int) -> None:
+    """Samples whose bytes changed after they were inspected: drop their shards' per-shard outputs,
+    so the next run inspects them again (their size and mtime may not show the change)."""
+    for shard in {w.shards[r // size] for r in rows}:
+        for ps in w.plan.stages:
+            if ps.stage.kind == "shard":
+                w.path(ps.name, shard).unlink(missing_ok=True)
 
 
 def _repair(e: workdir.DamagedWorkFile, result: RunResult, out: Path) -> None:
@@ -233,6 +260,8 @@ def _run_pass(p: Pass, w: _Work, cfg: PipelineConfig, eng: Any, progress: Progre
         _run_global(p.stages[0], w, cfg, progress, result)
     else:
         _run_shard_pass(p, w, cfg, eng, progress, result)
+    for name in p.names:
+        w.record_content(name)
     secs = time.perf_counter() - t
     result.passes.append((p.names, p.kind, secs))
     for ps in p.stages:

@@ -159,6 +159,16 @@ def stored_fingerprint(path: str | Path) -> str | None:
     return v.decode(errors="replace") if v else None
 
 
+def content_digest(path: str | Path) -> str | None:
+    """A digest of a work file's content, from the column checksums stored in its footer (None if absent)."""
+    try:
+        meta = pq.read_schema(path).metadata or {}
+    except (OSError, pa.ArrowException, ValueError):
+        return None
+    raw = meta.get(DIGEST_KEY)
+    return hashlib.sha256(raw).hexdigest() if raw else None
+
+
 def read_table(path: str | Path, columns: list[str] | None = None) -> pa.Table:
     """Read a work file (or some of its columns) and verify each column against its stored checksum.
 

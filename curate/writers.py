@@ -111,6 +111,7 @@ def write_outputs(cfg: PipelineConfig, out: Path, work: Path, plan: Plan, shards
         shard_entries, changed = _write_shards(cfg, out, plan, joined, v)
         if changed:
             _mark_changed(v, changed, result)
+            result.changed_rows = sorted(changed)
     ledger = build_ledger(joined, v, lcols)
     workdir.write_table(out / "ledger.parquet", ledger, compression=comp)
     (out / "config.resolved.toml").write_text(

@@ -16,12 +16,13 @@ import unicodedata
 from pathlib import Path
 
 import pytest
-from conftest import jpeg_bytes
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from curate import api
 from curate.terminal import escape
+
+from conftest import jpeg_bytes
 
 ROOT = Path(__file__).resolve().parents[1]
 

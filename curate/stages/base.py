@@ -29,13 +29,12 @@ from typing import Any, Callable, Iterable, Literal
 
 import pyarrow as pa
 
-from ..checks import CHECKS_TYPE, family
+from ..checks import ACTIONS, CHECKS_TYPE, family
 
 # Where a stage sits in a run, in order. "check": cheap per-sample checks and corpus-wide checks on
 # small columns; "model": embeddings and the checks that read them; "group": decontamination and
 # near-duplicate groups; "assign": the train/eval split. A stage never needs a column from a later phase.
 PHASES = ("check", "model", "group", "assign")
-ACTIONS = ("drop", "flag", "keep", "quarantine", "redact")
 
 
 @dataclass(frozen=True)

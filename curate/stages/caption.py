@@ -50,6 +50,9 @@ class CaptionConfig:
     boilerplate: list[str] = field(default_factory=lambda: list(DEFAULT_BOILERPLATE))
 
     def validate(self) -> None:
+        for k in ("min_chars", "max_chars", "min_tokens", "max_tokens"):
+            if getattr(self, k) < 0:
+                raise ValueError(f"{k} must be >= 0, got {getattr(self, k)}")
         if self.min_chars > self.max_chars:
             raise ValueError("min_chars must be <= max_chars")
         if self.max_repeats < 2:

@@ -310,4 +310,27 @@ def identity(view: ConfigView) -> dict:
     cfg = view.section(NAME)
     out = clipmod.identity(cfg.model, cfg.pretrained, cfg.cache_dir or None)
     out["quantize"] = bool(cfg.quantize)
+    ref = clipmod.resolve(cfg.model, cfg.pretrained)
+    if ref.weights_path:
+        check_checkpoint(ref.weights_path)
     return out
+
+
+def check_checkpoint(path: str) -> None:
+    """Read a local checkpoint's tensor index (all of a pickle), so a damaged file stops the run before
+    any stage starts rather than after the cheap checks (ModelError)."""
+    from ..errors import ModelError
+    from ..models import clip as clipmod
+
+    if path.lower().endswith(".safetensors"):
+        from safetensors import safe_open
+
+        try:
+            with safe_open(path, framework="numpy") as f:
+                names = list(f.keys())
+        except Exception as e:  # noqa: BLE001 - any parse failure means a damaged or foreign file
+            raise ModelError(f"checkpoint {path} is damaged or not a safetensors file: {e}") from e
+        if not names:
+            raise ModelError(f"checkpoint {path} holds no tensors")
+    else:
+        clipmod.read_state_dict(path)
