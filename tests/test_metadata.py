@@ -540,6 +540,7 @@ def test_strip_webp(mode):
 
 
 def test_strip_simple_webp_is_unchanged():
+    # RFC 9649: the simple format (one VP8 chunk, no VP8X) has no room for metadata.
     data = save(astronaut(), "WEBP")
     assert riff_chunks(data)[0][0] == b"VP8 "
     assert strip_metadata(data, "WEBP") == data
@@ -550,6 +551,7 @@ def test_strip_simple_webp_is_unchanged():
 
 @pytest.mark.parametrize("fmt", ["GIF", "BMP", "TIFF"])
 def test_other_formats_are_refused(fmt):
+    # GIF, BMP and TIFF are re-encoded by the shard writer instead.
     with pytest.raises(UnsupportedFormatError):
         strip_metadata(save(astronaut(), fmt), fmt)
 
@@ -598,9 +600,9 @@ def test_hostile_jpeg_segments():
     soi = b"\xff\xd8"
     with pytest.raises(MetadataError, match="past the end"):  # APP1 length runs past the end
         strip_metadata(soi + b"\xff\xe1\x10\x00Exif\x00\x00MM", "JPEG")
-    with pytest.raises(MetadataError):  # a length below 2 cannot hold itself
+    with pytest.raises(MetadataError):  # T.81 B.1.1.4: the length counts its own 2 bytes, so < 2 is invalid
         strip_metadata(soi + b"\xff\xe1\x00\x01" + b"\x00" * 10, "JPEG")
-    with pytest.raises(MetadataError):  # tables only, no scan
+    with pytest.raises(MetadataError):  # tables only, no scan (T.81 B.5 abbreviated format): no image
         strip_metadata(soi + b"\xff\xfe\x00\x04hi\xff\xd9", "JPEG")
     with pytest.raises(MetadataError):  # no marker where one must be
         strip_metadata(soi + b"\xff\xe0\x00\x04hi" + b"junk", "JPEG")
@@ -609,6 +611,7 @@ def test_hostile_jpeg_segments():
 
 
 def test_png_bad_crc():
+    # ISO/IEC 15948 sec. 5.3: a CRC-32 over type and data ends every chunk; one flipped bit breaks it.
     data = bytearray(full_png())
     chunks, pos = [], 8
     while pos < len(data):  # find the first IDAT and the tEXt chunk
