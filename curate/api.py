@@ -12,7 +12,8 @@ from .errors import ConfigError, InputError, OutputError
 
 
 def load(config: str | Path | None, *, input: str | None = None, sets: tuple[str, ...] | list[str] = (),
-         engine: str | None = None, eval_sets: list[str] | None = None) -> PipelineConfig:
+         engine: str | None = None, eval_sets: list[str] | None = None,
+         decisions: str | Path | None = None) -> PipelineConfig:
     """Resolve a pipeline config: defaults < file < sets < explicit arguments."""
     from . import plugins
     from .plan import config_sections
@@ -24,6 +25,10 @@ def load(config: str | Path | None, *, input: str | None = None, sets: tuple[str
         cfg.input.path = str(Path(input).resolve())
     if eval_sets:
         cfg.split.eval_sets = list(cfg.split.eval_sets) + [str(Path(p).resolve()) for p in eval_sets]
+    if decisions is not None:
+        if not Path(decisions).is_file():
+            raise ConfigError(f"decisions file {decisions} not found", key="review.decisions")
+        cfg.review.decisions = str(Path(decisions).resolve())
     if engine is not None:
         if engine not in ("local", "ray"):
             raise ConfigError(f"expected engine local or ray, got {engine!r}", key="run.engine")
@@ -38,13 +43,14 @@ def load(config: str | Path | None, *, input: str | None = None, sets: tuple[str
 
 def run(config: str | Path | None, *, out: str | Path, input: str | None = None,
         sets: tuple[str, ...] | list[str] = (), engine: str | None = None, eval_sets: list[str] | None = None,
-        progress: Any = None) -> Any:
+        decisions: str | Path | None = None, progress: Any = None) -> Any:
     """Run the whole pipeline; returns a runner.RunResult. Outputs land in `out`.
 
-    eval_sets: outside evaluation sets; training candidates that near-duplicate them are dropped."""
+    eval_sets: outside evaluation sets; training candidates that near-duplicate them are dropped.
+    decisions: a reviewer's keep/drop decisions (CSV or JSONL), applied over the checks."""
     from .runner import run_pipeline
 
-    cfg = load(config, input=input, sets=sets, engine=engine, eval_sets=eval_sets)
+    cfg = load(config, input=input, sets=sets, engine=engine, eval_sets=eval_sets, decisions=decisions)
     out = Path(out)
     check_output_dir(out)
     try:

@@ -23,7 +23,7 @@ def _cmd_run(a: argparse.Namespace) -> int:
 
     progress = BarProgress() if (not a.quiet and sys.stderr.isatty()) else NullProgress()
     res = api.run(a.config, out=a.out, input=a.input, sets=a.set, engine=a.engine, eval_sets=a.eval_set,
-                  progress=progress)
+                  decisions=a.decisions, progress=progress)
     summary = json.loads((Path(a.out) / "summary.json").read_text())
     if a.json:
         print(json.dumps({"out": res.out_dir, "summary": summary, "ran": res.ran, "reused": res.reused}))
@@ -35,8 +35,6 @@ def _cmd_run(a: argparse.Namespace) -> int:
         label = _e(", ".join(names))
         print(f"  {label:<32}{secs:7.2f}s  {what}")
     print(f"  {'outputs':<32}{res.seconds.get('pack', 0.0):7.2f}s  ledger, shards, manifest, summary, report")
-    for note in res.notes:
-        print(f"note: {_e(note)}")
     print(f"kept {summary['kept']} of {summary['samples']} ({100 * summary['kept_fraction']:.1f}%)")
     if summary["by_reason"]:
         print("drops by reason (a sample may have several):")
@@ -140,6 +138,9 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--eval-set", action="append", default=[], metavar="PATH",
                    help="an outside eval set (folder, manifest or shards); training images that near-duplicate "
                         "it are dropped as eval_overlap (repeatable; adds to [split] eval_sets)")
+    r.add_argument("--decisions", metavar="FILE",
+                   help="a reviewer's decisions (CSV or JSONL: sample_id or source, decision keep|drop, note), "
+                        "applied over the checks and recorded in the ledger; they hold on every re-run")
     r.add_argument("--json", action="store_true", help="print the summary as one JSON line")
     r.add_argument("--quiet", action="store_true", help="no progress bars")
     r.set_defaults(func=_cmd_run)

@@ -9,7 +9,7 @@ each sample's reasons and flags. Nothing else decides.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Iterable, Sequence
+from typing import Callable, Iterable, Sequence
 
 import numpy as np
 import pyarrow as pa
@@ -21,6 +21,8 @@ from .stages.base import CheckSpec, spec_for
 
 # Actions under which a failed check keeps the sample but marks it.
 MARKING = ("flag", "quarantine", "redact")
+# A reviewer's keep: it lifts every drop whose code may be kept (not the ones that make an image unusable).
+OVERRIDE = "review_keep"
 
 
 class Actions:
@@ -56,9 +58,15 @@ class Actions:
     def codes_with(self, codes: Iterable[str], action: str) -> list[str]:
         return [c for c in codes if c is not None and self.action(c) == action]
 
+    def overridable(self, code: str) -> bool:
+        """Whether a reviewer's keep lifts a drop by this code."""
+        spec = spec_for(code, self.specs)
+        return spec is not None and "keep" in spec.allowed
 
-def _failed_rows(checks: pa.ChunkedArray | pa.Array, actions: Actions, action: str) -> np.ndarray:
-    """Row indices with at least one failed check whose action is `action`."""
+
+def _failed_rows(checks: pa.ChunkedArray | pa.Array, actions: Actions, action: str,
+                 which: Callable[[str], bool] | None = None) -> np.ndarray:
+    """Row indices with at least one failed check whose action is `action` (and whose code `which` accepts)."""
     arr = checks.combine_chunks() if isinstance(checks, pa.ChunkedArray) else checks
     if len(arr) == 0:
         return np.zeros(0, np.int64)
@@ -67,7 +75,7 @@ def _failed_rows(checks: pa.ChunkedArray | pa.Array, actions: Actions, action: s
         return np.zeros(0, np.int64)
     parents = pc.list_parent_indices(arr)
     codes = flat.field("code")
-    wanted = actions.codes_with(pc.unique(codes).to_pylist(), action)
+    wanted = [c for c in actions.codes_with(pc.unique(codes).to_pylist(), action) if which is None or which(c)]
     if not wanted:
         return np.zeros(0, np.int64)
     hit = pc.and_(pc.fill_null(flat.field("failed"), False), pc.is_in(codes, value_set=pa.array(wanted)))
@@ -75,17 +83,20 @@ def _failed_rows(checks: pa.ChunkedArray | pa.Array, actions: Actions, action: s
 
 
 def rows_with(check_columns: Sequence[pa.ChunkedArray | pa.Array], actions: Actions, action: str,
-              n: int) -> np.ndarray:
+              n: int, which: Callable[[str], bool] | None = None) -> np.ndarray:
     """Boolean mask: rows with a failed check of the given action in any of the columns."""
     mask = np.zeros(n, dtype=bool)
     for col in check_columns:
-        mask[_failed_rows(col, actions, action)] = True
+        mask[_failed_rows(col, actions, action, which)] = True
     return mask
 
 
 def alive(check_columns: Sequence[pa.ChunkedArray | pa.Array], actions: Actions, n: int) -> np.ndarray:
-    """True for samples that no failed check drops."""
-    return ~rows_with(check_columns, actions, "drop", n)
+    """True for samples that no failed check drops (a reviewer's keep lifts the drops it may lift)."""
+    kept = rows_with(check_columns, actions, "keep", n, lambda c: c == OVERRIDE)
+    hard = rows_with(check_columns, actions, "drop", n, lambda c: not actions.overridable(c))
+    soft = rows_with(check_columns, actions, "drop", n, actions.overridable)
+    return ~(hard | (soft & ~kept))
 
 
 def flags_so_far(check_columns: Sequence[pa.ChunkedArray | pa.Array], actions: Actions, n: int) -> list[list[str]]:
@@ -119,6 +130,8 @@ def verdict(stage_checks: Sequence[tuple[str, list]], skipped: dict[str, np.ndar
     see because an earlier check dropped them; `skip_codes[stage]`: that stage's codes, listed as skipped."""
     v = Verdict([True] * n, [[] for _ in range(n)], [[] for _ in range(n)], [False] * n, [[] for _ in range(n)],
                 [None] * n, [[] for _ in range(n)])
+    reviewed_keep = [any(c["failed"] and c["code"] == OVERRIDE for _, lists in stage_checks for c in lists[i] or ())
+                     for i in range(n)]
     for stage, lists in stage_checks:
         skip = skipped.get(stage)
         for i in range(n):
@@ -129,9 +142,13 @@ def verdict(stage_checks: Sequence[tuple[str, list]], skipped: dict[str, np.ndar
                 continue
             for c in lists[i] or ():
                 act = actions.action(c["code"])
+                if c["failed"] and act == "drop" and reviewed_keep[i] and actions.overridable(c["code"]):
+                    act = "overridden"  # a reviewer kept the sample despite this check
                 v.records[i].append({"stage": stage, **c, "status": "fail" if c["failed"] else "pass",
                                      "action": act})
-                if not c["failed"] or act == "keep":
+                if c["failed"] and c["code"] == OVERRIDE and OVERRIDE not in v.flags[i]:
+                    v.flags[i].append(OVERRIDE)
+                if not c["failed"] or act in ("keep", "overridden"):
                     continue
                 if act == "drop":
                     if c["code"] not in v.reasons[i]:

@@ -125,17 +125,33 @@ def run_pipeline(cfg: PipelineConfig, out_dir: str | Path, *, progress: Progress
     plan = build_plan(cfg)  # a config that cannot run is refused here, before any work
     out = Path(out_dir)
     lock = workdir.RunLock(out).acquire()
+    notes = _Notes()
+    log.addHandler(notes)
     try:
         workdir.clean_temp_files(out)
-        result = _run_locked(cfg, plan, actions, out, progress, engine, lock.cleared_stale)
+        result = _run_locked(cfg, plan, actions, out, progress, engine, lock.cleared_stale, notes.lines)
         return result
     finally:
+        log.removeHandler(notes)
         progress.finish()
         lock.release()
 
 
+class _Notes(logging.Handler):
+    """Collects the run's warnings (from any stage) for the summary and the CLI: nothing silent."""
+
+    def __init__(self) -> None:
+        super().__init__(logging.WARNING)
+        self.lines: list[str] = []
+
+    def emit(self, record: logging.LogRecord) -> None:
+        msg = record.getMessage()
+        if msg not in self.lines:
+            self.lines.append(msg)
+
+
 def _run_locked(cfg: PipelineConfig, plan: Plan, actions: decide.Actions, out: Path, progress: Progress,
-                engine: Any, cleared: bool) -> RunResult:
+                engine: Any, cleared: bool, notes: list[str]) -> RunResult:
     work = out / "work"
     t0 = time.perf_counter()
     src = list_samples(cfg.input)
@@ -144,7 +160,8 @@ def _run_locked(cfg: PipelineConfig, plan: Plan, actions: decide.Actions, out: P
                          "members); check --input")
     size = cfg.input.shard_size
     shards = layout.shard_names(max(1, -(-src.num_rows // size)))
-    result = RunResult(out_dir=str(out), samples=src.num_rows, shards=len(shards), cleared_stale_lock=cleared)
+    result = RunResult(out_dir=str(out), samples=src.num_rows, shards=len(shards), cleared_stale_lock=cleared,
+                       notes=notes)
     src_fp, offsets = _write_source(work, src, shards, size)
     result.seconds["list"] = time.perf_counter() - t0
     eng = engine or make_engine(cfg)
@@ -195,10 +212,8 @@ def _forget_changed(w: _Work, rows: list[int], size: int) -> None:
 
 
 def _repair(e: workdir.DamagedWorkFile, result: RunResult, out: Path) -> None:
-    msg = f"work file {os.path.relpath(e.path, out)} is damaged ({e.why}); recomputing it"
-    log.warning(msg)
+    log.warning("work file %s is damaged (%s); recomputing it", os.path.relpath(e.path, out), e.why)
     result.repaired.append(e.path)
-    result.notes.append(msg)
     try:
         os.unlink(e.path)
     except FileNotFoundError:

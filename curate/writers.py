@@ -10,6 +10,8 @@ Everything is written atomically; shards go to a temporary folder that replaces
 from __future__ import annotations
 
 import hashlib
+import json
+import logging
 import shutil
 from collections import Counter
 from pathlib import Path
@@ -25,6 +27,8 @@ from .config import PipelineConfig
 from .plan import SOURCE, Plan
 from .stages import REGISTRY, Column
 from .stages.inspect import CHANGED
+
+log = logging.getLogger("curate")
 
 # Columns every shard row has, besides the stages' shard columns.
 CORE_SHARD = (
@@ -81,6 +85,42 @@ def ledger_columns(cfg: PipelineConfig) -> list[Column]:
             if c.ledger and not c.transient and c.name not in out:
                 out[c.name] = c
     return list(out.values())
+
+
+META_PREFIX = "meta."
+# At most this many metadata columns reach the outputs (a manifest with thousands of columns would
+# otherwise swamp the ledger); the rest stay in the source table's `meta` JSON.
+META_MAX = 200
+
+
+def meta_columns(joined: pa.Table) -> list[tuple[str, pa.Array]]:
+    """A manifest's extra columns (licence, credit, source URL, its own id ...) as `meta.<name>` columns."""
+    if "meta" not in joined.column_names:
+        return []
+    parsed = []
+    for text in joined.column("meta").to_pylist():
+        try:
+            obj = json.loads(text) if text else {}
+        except ValueError:
+            obj = {}
+        parsed.append(obj if isinstance(obj, dict) else {})
+    keys = sorted({k for obj in parsed for k in obj})
+    if len(keys) > META_MAX:
+        log.warning("the input has %d metadata columns; the first %d (by name) reach the ledger and shards",
+                    len(keys), META_MAX)
+        keys = keys[:META_MAX]
+    out = []
+    for k in keys:
+        values = [obj.get(k) for obj in parsed]
+        try:
+            arr = pa.array(values)
+            if pa.types.is_null(arr.type) or pa.types.is_nested(arr.type):
+                raise TypeError
+        except (pa.ArrowInvalid, pa.ArrowTypeError, TypeError, OverflowError):
+            arr = pa.array([None if v is None else (v if isinstance(v, str) else json.dumps(v, ensure_ascii=False))
+                            for v in values], pa.string())
+        out.append((META_PREFIX + k, arr))
+    return out
 
 
 def run_verdict(joined: pa.Table, plan: Plan, actions: decide.Actions) -> decide.Verdict:
@@ -160,6 +200,9 @@ def build_ledger(joined: pa.Table, v: decide.Verdict, lcols: list[Column]) -> pa
                             for g, sid, d in zip(col.to_pylist(), sids, decoded)], pa.string())
         names.append(c.name)
         arrays.append(col)
+    for name, arr in meta_columns(joined):
+        names.append(name)
+        arrays.append(arr)
     names.append("checks")
     arrays.append(pa.array(v.records, type=pa.list_(decide.LEDGER_CHECK)))
     return pa.Table.from_arrays(arrays, names=names)
@@ -174,9 +217,8 @@ def _mark_changed(v: decide.Verdict, changed: dict[int, str], result: Any) -> No
         v.kept[i] = False
         v.quarantined[i] = False
         v.stopped_at[i] = v.stopped_at[i] or "pack"
-    msg = (f"{len(changed)} image(s) changed on disk after they were inspected; they were left out of the shards "
-           f"({CHANGED}); re-run to inspect them again")
-    result.notes.append(msg)
+    log.warning("%d image(s) changed on disk after they were inspected; they were left out of the shards (%s); "
+                "re-run to inspect them again", len(changed), CHANGED)
 
 
 def _shard_columns(plan: Plan) -> list[Column]:
@@ -202,6 +244,9 @@ def _write_shards(cfg: PipelineConfig, out: Path, plan: Plan, joined: pa.Table,
     kept = np.flatnonzero(np.asarray(v.kept, dtype=bool))
     take = pa.array(kept, type=pa.int64())
     data = {c.name: joined.column(c.name).take(take).to_pylist() for c in cols if c.name in joined.column_names}
+    for name, arr in meta_columns(joined):
+        cols.append(Column(name, arr.type))
+        data[name] = arr.take(take).to_pylist()
     split = joined.column("split").take(take).to_pylist() if "split" in joined.column_names else [None] * len(kept)
     locs = joined.column("locator").take(take).to_pylist()
     shas = joined.column("sha256").take(take).to_pylist()

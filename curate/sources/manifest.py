@@ -56,7 +56,8 @@ def list_manifest(path: str, cfg: InputConfig, scope: Scope) -> list[dict]:
                 f"manifest {path}: no column {col!r}; its columns are: {', '.join(map(repr, columns)) or '(none)'}"
                 " (set input.image_column / input.caption_column / input.id_column)"
             )
-    extra = [c for c in columns if c not in wanted]
+    # Every other column, the id column included, is kept as metadata for the ledger and the shards.
+    extra = [c for c in columns if c not in (cfg.image_column, cfg.caption_column)]
     base = os.path.dirname(path)
     rows: list[dict] = []
     for n, rec in records:
