@@ -233,7 +233,7 @@ def _shard_columns(plan: Plan) -> list[Column]:
 def _write_shards(cfg: PipelineConfig, out: Path, plan: Plan, joined: pa.Table,
                   v: decide.Verdict) -> tuple[list[dict], dict[int, str]]:
     from .sources import read_bytes
-    from .stages.pack import encode_image
+    from .stages.pack import pack_image
 
     pcfg = cfg.pack
     tmp, old = out / ".shards-new", out / ".shards-old"
@@ -250,7 +250,6 @@ def _write_shards(cfg: PipelineConfig, out: Path, plan: Plan, joined: pa.Table,
     split = joined.column("split").take(take).to_pylist() if "split" in joined.column_names else [None] * len(kept)
     locs = joined.column("locator").take(take).to_pylist()
     shas = joined.column("sha256").take(take).to_pylist()
-    fmts = joined.column("format").take(take).to_pylist()
     by_split: dict[str, list[int]] = {}
     for j, i in enumerate(kept.tolist()):
         s = "quarantine" if v.quarantined[i] else (split[j] or "train")
@@ -267,12 +266,14 @@ def _write_shards(cfg: PipelineConfig, out: Path, plan: Plan, joined: pa.Table,
                 if why is not None:
                     changed[int(kept[j])] = why
                     continue
-                img, fmt, w, h = encode_image(raw, pcfg)
+                try:
+                    packed = pack_image(raw, pcfg)
+                except Exception as e:  # noqa: BLE001 - inspect decoded it, so this is rare; never a crash
+                    changed[int(kept[j])] = f"cannot be packed: {type(e).__name__}: {e}"[:160]
+                    continue
                 row = {c.name: data[c.name][j] for c in cols if c.name in data}
-                row.update(image=img, image_format=fmt or fmts[j], split=name,
-                           review_flags=v.flags[int(kept[j])])
-                if w is not None:
-                    row["width"], row["height"] = w, h
+                row.update(image=packed.data, image_format=packed.format, width=packed.width, height=packed.height,
+                           split=name, review_flags=v.flags[int(kept[j])])
                 writer.add(row)
         entries += writer.close()
     tmp.mkdir(parents=True, exist_ok=True)
