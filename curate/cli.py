@@ -36,6 +36,12 @@ def _cmd_run(a: argparse.Namespace) -> int:
         print(f"  {label:<32}{secs:7.2f}s  {what}")
     print(f"  {'outputs':<32}{res.seconds.get('pack', 0.0):7.2f}s  ledger, shards, manifest, summary, report")
     print(f"kept {summary['kept']} of {summary['samples']} ({100 * summary['kept_fraction']:.1f}%)")
+    if summary.get("agreement", {}).get("fit_auc") is not None:
+        ag = summary["agreement"]
+        verdict = "applied" if ag["reliable"] else f"NOT applied (below {ag['min_fit_auc']:g}): model out of its depth"
+        thr = f", threshold {ag['threshold']:.3f}" if ag["reliable"] and ag["threshold"] is not None else ""
+        print(f"agreement: model fit on this corpus ROC AUC {ag['fit_auc']:.3f} (true vs shuffled captions); "
+              f"{verdict}{thr}")
     if summary["by_reason"]:
         print("drops by reason (a sample may have several):")
         for code, n in summary["by_reason"].items():

@@ -363,6 +363,13 @@ def summarize(ledger: pa.Table, plan: Plan) -> dict:
             d["dropped"] += "drop" in statuses
     n = len(kept)
     k = sum(kept)
+    extra = {}
+    fit = next((c for cl in checks for c in cl if c["code"] == "agreement_unreliable"), None)
+    if fit is not None:
+        low = next((c for cl in checks for c in cl if c["code"] == "agreement_low"), None)
+        extra["agreement"] = {"fit_auc": fit["value"], "min_fit_auc": fit["threshold"], "reliable": not fit["failed"],
+                              "fit_detail": fit["detail"], "threshold": low["threshold"] if low else None,
+                              "threshold_detail": low["detail"] if low else None}
     return {
         "samples": n,
         "kept": k,
@@ -376,4 +383,5 @@ def summarize(ledger: pa.Table, plan: Plan) -> dict:
         "by_split": dict(Counter(s for s in split if s)),
         "groups": len({g for g in ledger.column("group_id").to_pylist() if g is not None})
         if "group_id" in ledger.column_names else 0,
+        **extra,
     }

@@ -50,7 +50,12 @@ def _view(*sets: str):
 
 
 def _run(cosines, *sets):
-    return stage_call("agreement", _table(cosines), *sets).to_pylist()
+    """The stage's rows, with only the agreement_low records in the checks column (the fit check
+    is tested on its own below; min_fit_auc 0 keeps it out of the way here)."""
+    rows = stage_call("agreement", _table(cosines), "agreement.min_fit_auc=0", *sets).to_pylist()
+    for r in rows:
+        r[checks_column("agreement")] = [c for c in r[checks_column("agreement")] if c["code"] == "agreement_low"]
+    return rows
 
 
 def test_clip_score_worked_values():
@@ -143,3 +148,119 @@ def test_config_validation():
         pipeline_config("agreement.keep_percent=0")
     with pytest.raises(ConfigError):
         pipeline_config("agreement.threshold=1.5")
+
+
+# --------------------------------------------------------------------------- model fit on this corpus
+
+
+def test_fit_auc_is_mann_whitney():
+    # ROC AUC = Mann-Whitney U / (n1 * n2) with ties counted half (Hanley & McNeil, Radiology 1982).
+    assert agreement.fit_auc(np.array([0.9, 0.8]), np.array([0.1, 0.2])) == 1.0
+    assert agreement.fit_auc(np.array([0.1]), np.array([0.9])) == 0.0
+    assert agreement.fit_auc(np.array([0.5, 0.9]), np.array([0.5, 0.1])) == pytest.approx(0.875)
+    from sklearn.metrics import roc_auc_score  # a reference implementation (scikit-learn)
+
+    rng = np.random.default_rng(0)
+    t, f = rng.normal(0.3, 0.1, 200), rng.normal(0.1, 0.1, 300)
+    ref = roc_auc_score(np.r_[np.ones(200), np.zeros(300)], np.r_[t, f])
+    assert agreement.fit_auc(t, f) == pytest.approx(ref, abs=1e-12)
+
+
+def test_shuffled_pairs_never_keep_a_caption():
+    rng = np.random.default_rng(1)
+    img = rng.normal(size=(50, DIM))
+    txt = img + 0.01 * rng.normal(size=(50, DIM))  # every true pair nearly identical
+    sh = agreement.shuffled_pairs(img, txt, seed=3)
+    assert len(sh) == 50 and sh.max() < 0.9  # no sample met its own caption
+    assert np.array_equal(sh, agreement.shuffled_pairs(img, txt, seed=3))  # the seed fixes the permutation
+    assert len(agreement.shuffled_pairs(img[:1], txt[:1], seed=0)) == 0
+
+
+def _random_pairs(n: int, seed: int) -> list[float]:
+    rng = np.random.default_rng(seed)
+    return list(rng.uniform(-0.2, 0.2, n))
+
+
+def test_a_model_that_does_not_know_the_corpus_drops_nothing():
+    # Captions no closer to their own images than to others' (cosines near 0 throughout): the fit
+    # AUC sits near chance, so agreement_low is not applied and every scored sample is flagged.
+    table = _table(_random_pairs(60, 2))
+    rows = stage_call("agreement", table, "agreement.threshold=0.1").to_pylist()
+    for r in rows:
+        recs = {c["code"]: c for c in r[checks_column("agreement")]}
+        assert set(recs) == {"agreement_unreliable"} and recs["agreement_unreliable"]["failed"]
+        assert recs["agreement_unreliable"]["value"] < 0.85
+
+
+def test_a_model_that_knows_the_corpus_is_applied_and_its_fit_recorded():
+    rows = stage_call("agreement", _table([0.6 + 0.3 * k / 40 for k in range(40)] + [0.05]),
+                      "agreement.threshold=0.3").to_pylist()
+    recs = [{c["code"]: c for c in r[checks_column("agreement")]} for r in rows]
+    assert all(not r["agreement_unreliable"]["failed"] and r["agreement_unreliable"]["value"] > 0.85 for r in recs)
+    assert [r["agreement_low"]["failed"] for r in recs] == [False] * 40 + [True]
+
+
+def test_shuffled_mode_threshold_passes_the_chosen_share_of_shuffled_pairs():
+    cos = [0.6 + 0.3 * k / 99 for k in range(100)]
+    rows = stage_call("agreement", _table(cos), "agreement.mode=shuffled",
+                      "agreement.shuffled_pass_percent=5").to_pylist()
+    rec = [c for c in rows[0][checks_column("agreement")] if c["code"] == "agreement_low"][0]
+    img, _ = agreement.embedding_matrix(_table(cos).column("image_emb"))
+    txt, _ = agreement.embedding_matrix(_table(cos).column("text_emb"))
+    sh = agreement.shuffled_pairs(img, txt, 0)
+    assert rec["threshold"] == pytest.approx(np.quantile(sh, 0.95))
+    assert (sh >= rec["threshold"]).mean() == pytest.approx(0.05, abs=0.02)
+    assert "shuffled" in rec["detail"]
+
+
+def test_percentile_never_goes_below_the_shuffled_median():
+    # Keep the top 100% of a corpus of poor pairs: the cut-off would be the worst true pair, which
+    # random captions beat half the time; the shuffled pairs' median is used instead.
+    rows = stage_call("agreement", _table(_random_pairs(60, 4)), "agreement.mode=percentile",
+                      "agreement.keep_percent=100", "agreement.min_fit_auc=0").to_pylist()
+    rec = [c for c in rows[0][checks_column("agreement")] if c["code"] == "agreement_low"][0]
+    assert "shuffled pairs' median" in rec["detail"]
+    assert sum(c["failed"] for r in rows for c in r[checks_column("agreement")] if c["code"] == "agreement_low") > 0
+
+
+def test_the_demo_model_on_public_photos_drops_nothing_and_says_why(tmp_path):
+    # Public photos (scikit-image and scikit-learn sample images) with true captions: the demo model
+    # knows only one invented pottery workshop, so it cannot tell these captions from shuffled ones.
+    import json
+
+    from PIL import Image
+    from skimage import data
+    from sklearn.datasets import load_sample_image
+
+    from curate import api
+
+    photos = {
+        "astronaut": (data.astronaut(), "an astronaut in a white spacesuit in front of a flag"),
+        "coffee": (data.coffee(), "a cup of coffee on a saucer with a spoon"),
+        "chelsea": (data.chelsea(), "a tabby cat looking to the side"),
+        "rocket": (data.rocket(), "a rocket on its launch pad under a blue sky"),
+        "camera": (data.camera(), "a man with a camera on a tripod in a field"),
+        "china": (load_sample_image("china.jpg"), "a temple roof among trees in China"),
+        "flower": (load_sample_image("flower.jpg"), "a pink flower with a yellow centre"),
+        "hubble": (data.hubble_deep_field(), "distant galaxies in a deep space telescope image"),
+        "immuno": (data.immunohistochemistry(), "a stained tissue sample under a microscope"),
+        "retina": (data.retina(), "a photograph of the back of a human eye"),
+        "motorcycle": (data.stereo_motorcycle()[0], "a red motorcycle parked in a garage"),
+        "text": (data.text(), "printed text on a sign photographed at an angle"),
+    }
+    root = tmp_path / "photos"
+    root.mkdir()
+    for name, (arr, caption) in photos.items():
+        Image.fromarray(arr).convert("RGB").save(root / f"{name}.jpg", quality=92)
+        (root / f"{name}.txt").write_text(caption, encoding="utf-8")
+    out = tmp_path / "out"
+    res = api.run(None, input=str(root), out=str(out), sets=['embed.model="demo"', 'embed.pretrained=""',
+                                                            "neardup.enabled=false", "run.workers=1"])
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["agreement"]["reliable"] is False and summary["agreement"]["fit_auc"] < 0.85
+    assert "agreement_low" not in summary["by_reason"]
+    import pyarrow.parquet as pq
+
+    scored = [r for r in pq.read_table(out / "ledger.parquet").to_pylist() if r["agreement"] is not None]
+    assert len(scored) >= 10 and all("agreement_unreliable" in r["flags"] and r["kept"] for r in scored)
+    assert any("does not know this corpus" in n for n in res.notes)

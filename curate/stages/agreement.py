@@ -11,6 +11,7 @@ calibration.
 """
 from __future__ import annotations
 
+import logging
 import math
 from dataclasses import dataclass
 from typing import Any, Literal
@@ -22,8 +23,10 @@ from ..checks import CHECKS_TYPE, check
 from ..errors import ConfigError
 from .base import CheckSpec, Column, ConfigView, StageContext, checks_column, stage
 
+log = logging.getLogger(__name__)
+
 NAME = "agreement"
-VERSION = "2"
+VERSION = "3"
 
 # CLIPScore weight w (Hessel et al. 2021, sec. 3): CLIP-S(c, v) = w * max(cos(c, v), 0), w = 2.5.
 CLIPSCORE_WEIGHT = 2.5
@@ -42,26 +45,44 @@ DEFAULT_THRESHOLDS: dict[tuple[str, str], tuple[float, str]] = {
 class AgreementConfig:
     enabled: bool = True
     # "absolute": drop pairs whose cosine is below `threshold`; "percentile": keep the top
-    # `keep_percent` % of this corpus by cosine (DataComp's CLIP-score baseline, Gadre et al. 2023).
-    mode: Literal["absolute", "percentile"] = "absolute"
+    # `keep_percent` % of this corpus by cosine (DataComp's CLIP-score baseline, Gadre et al. 2023);
+    # "shuffled": keep pairs that beat all but `shuffled_pass_percent` % of shuffled pairs (captions
+    # permuted among this run's images), a threshold that needs no labels and no per-model table.
+    mode: Literal["absolute", "percentile", "shuffled"] = "absolute"
     # Cosine threshold for absolute mode; unset = the default for embed.model/embed.pretrained
     # (LAION-5B's 0.28 for OpenAI ViT-B/32; the demo model's calibrated value).
     threshold: float | None = None
     # Percentile mode: share of samples with embeddings to keep. DataComp's baseline kept the top
     # 30% by OpenAI ViT-L/14 cosine (Gadre et al., NeurIPS 2023, arXiv 2304.14108; from memory).
     keep_percent: float = 30.0
+    # Shuffled mode: share (%) of shuffled, mismatched pairs the threshold lets through (common
+    # practice: 1% false acceptance).
+    shuffled_pass_percent: float = 1.0
+    # Below this ROC AUC of true against shuffled pairs the model does not know this corpus: nothing
+    # is dropped for agreement_low and every scored sample is flagged agreement_unreliable. 0.5 is
+    # chance; at 0.85 about one shuffled pair in seven still outranks a true one (common practice).
+    min_fit_auc: float = 0.85
+    # Seed of the caption permutation that makes the shuffled pairs (recorded in each check's detail).
+    shuffle_seed: int = 0
 
     def validate(self) -> None:
         if self.threshold is not None and not -1.0 <= self.threshold <= 1.0:
             raise ValueError(f"threshold is a cosine and must lie in [-1, 1], got {self.threshold}")
         if not 0.0 < self.keep_percent <= 100.0:
             raise ValueError(f"keep_percent must be in (0, 100], got {self.keep_percent}")
+        if not 0.0 < self.shuffled_pass_percent < 100.0:
+            raise ValueError(f"shuffled_pass_percent must be in (0, 100), got {self.shuffled_pass_percent}")
+        if not 0.0 <= self.min_fit_auc <= 1.0:
+            raise ValueError(f"min_fit_auc must be in [0, 1], got {self.min_fit_auc}")
 
 
 CHECKS = (
     CheckSpec("agreement_low", "drop",
               "the caption does not describe the image: CLIP image-caption cosine below the threshold "
-              "(absolute, or the percentile mode's cut-off)"),
+              "(absolute, the percentile mode's cut-off, or the shuffled pairs' cut-off)"),
+    CheckSpec("agreement_unreliable", "flag",
+              "the model separates true from shuffled captions too poorly on this corpus (ROC AUC below "
+              "agreement.min_fit_auc), so agreement drops nothing"),
 )
 
 
@@ -128,29 +149,82 @@ COLUMNS = (
 )
 
 
+def shuffled_pairs(img: np.ndarray, txt: np.ndarray, seed: int) -> np.ndarray:
+    """Cosines of mismatched pairs: each image with the caption of another sample, by a random
+    permutation with no fixed point (seeded). Pairs whose two captions embed identically are left
+    out (they would be true pairs)."""
+    n = img.shape[0]
+    if n < 2:
+        return np.zeros(0, np.float32)
+    order = np.random.default_rng(seed).permutation(n)
+    perm = np.empty(n, dtype=np.int64)
+    perm[order] = np.roll(order, -1)  # one random cycle through every sample: no sample keeps its caption
+    same = np.all(txt == txt[perm], axis=1)
+    cos = cosines(img, txt[perm])
+    return cos[~same & np.isfinite(cos)]
+
+
+def fit_auc(true: np.ndarray, shuffled: np.ndarray) -> float | None:
+    """ROC AUC of true against shuffled cosines (Mann-Whitney U / (n1 n2), ties counted half)."""
+    if len(true) == 0 or len(shuffled) == 0:
+        return None
+    from scipy.stats import rankdata
+
+    ranks = rankdata(np.concatenate([true, shuffled]))
+    u = ranks[: len(true)].sum() - len(true) * (len(true) + 1) / 2.0
+    return float(u / (len(true) * len(shuffled)))
+
+
+def _threshold(cfg: AgreementConfig, ctx: StageContext, cos: np.ndarray, shuffled: np.ndarray) -> tuple[float | None, str]:
+    if cfg.mode == "absolute":
+        thr, _ = resolve_threshold(cfg, ctx.config)
+        return thr, "absolute threshold"
+    if cfg.mode == "shuffled":
+        if not len(shuffled):
+            return None, "shuffled pairs (too few samples)"
+        thr = float(np.quantile(shuffled, 1.0 - cfg.shuffled_pass_percent / 100.0))
+        return thr, f"passes {cfg.shuffled_pass_percent:g}% of shuffled pairs"
+    thr = percentile_threshold(cos, cfg.keep_percent) if len(cos) else None
+    detail = f"percentile: keep the top {cfg.keep_percent:g}%"
+    floor = float(np.median(shuffled)) if len(shuffled) else None
+    if thr is not None and floor is not None and thr < floor:
+        log.warning("agreement: the top %g%% cut-off (cosine %.3f) lies below the shuffled pairs' median (%.3f); "
+                    "using the median instead, so no sample is kept that a random caption would match as well",
+                    cfg.keep_percent, thr, floor)
+        return floor, detail + ", raised to the shuffled pairs' median"
+    return thr, detail
+
+
 @stage(name=NAME, version=VERSION, config=AgreementConfig, kind="global", phase="model", alive_only=True,
        needs=("image_emb", "text_emb"), sections=("embed",), provides=COLUMNS, checks=CHECKS,
        identity=lambda view: identity(view))
 def run(table: pa.Table, cfg: AgreementConfig, ctx: StageContext) -> pa.Table:
-    """Does the caption describe the image? CLIP cosine against a threshold."""
+    """Does the caption describe the image? CLIP cosine against a threshold, if the model knows the corpus."""
     n = table.num_rows
     img, img_ok = embedding_matrix(table.column("image_emb"))
     txt, txt_ok = embedding_matrix(table.column("text_emb"))
     cos = cosines(img, txt)
     valid = img_ok & txt_ok & np.isfinite(cos)
-    if cfg.mode == "percentile":
-        thr = percentile_threshold(cos[valid], cfg.keep_percent) if valid.any() else None
-        detail = f"percentile: keep the top {cfg.keep_percent:g}%"
-    else:
-        thr, _ = resolve_threshold(cfg, ctx.config)
-        detail = "absolute threshold"
+    shuffled = shuffled_pairs(img[valid], txt[valid], cfg.shuffle_seed)
+    auc = fit_auc(cos[valid], shuffled)
+    thr, detail = _threshold(cfg, ctx, cos[valid], shuffled)
+    reliable = auc is None or auc >= cfg.min_fit_auc
+    fit = check("agreement_unreliable", failed=not reliable, value=auc, threshold=cfg.min_fit_auc, op=">=",
+                unit="ROC AUC", detail=f"true vs shuffled captions, seed {cfg.shuffle_seed}, "
+                                        f"{len(shuffled)} shuffled pairs")
+    if not reliable:
+        log.warning("agreement: the model tells true captions from shuffled ones with ROC AUC %.3f (< %g): it "
+                    "does not know this corpus, so agreement drops nothing; scored samples are flagged "
+                    "agreement_unreliable", auc, cfg.min_fit_auc)
     checks = []
     for i in range(n):
         if not valid[i]:
             checks.append([])
-            continue
-        checks.append([check("agreement_low", value=float(cos[i]), threshold=thr, op=">=", unit="cosine",
-                             detail=detail)])
+        elif not reliable or thr is None:
+            checks.append([fit])
+        else:
+            checks.append([fit, check("agreement_low", value=float(cos[i]), threshold=thr, op=">=", unit="cosine",
+                                      detail=detail)])
     agreement = pa.array(np.where(valid, cos, 0.0).astype(np.float32), mask=~valid)
     score = pa.array(clip_score(np.where(valid, cos, 0.0)).astype(np.float32), mask=~valid)
     if ctx.progress is not None:
@@ -166,5 +240,8 @@ def identity(config: ConfigView) -> dict:
     cfg = config.section(NAME)
     if cfg.mode == "percentile":
         return {"mode": "percentile", "keep_percent": cfg.keep_percent}
+    if cfg.mode == "shuffled":
+        return {"mode": "shuffled", "shuffled_pass_percent": cfg.shuffled_pass_percent,
+                "threshold_source": "this run's shuffled caption pairs"}
     thr, source = resolve_threshold(cfg, config)
     return {"mode": "absolute", "threshold": thr, "threshold_source": source}
