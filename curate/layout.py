@@ -9,6 +9,7 @@ Every file carries the fingerprint that made it and a checksum of its content (c
 """
 from __future__ import annotations
 
+import hashlib
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Sequence
@@ -37,8 +38,28 @@ def output_path(work: Path, stage: str, shard: str | None = None) -> Path:
     return Path(work) / stage / f"{shard or 'all'}.parquet"
 
 
-def shard_names(n: int) -> list[str]:
-    return [f"s{i:05d}" for i in range(n)]
+def cut_shards(sample_ids: Sequence[str], size: int) -> list[tuple[str, int, int]]:
+    """Shards of about `size` rows, as (name, start, length), cut where the content says so.
+
+    A cut falls after a sample whose id hashes to 0 modulo `size` (once the shard holds at least a
+    quarter of `size`), or at four times `size`. The cuts depend on the samples near them only, so
+    adding or removing k samples changes about k shards, not every shard after the first change.
+    A shard is named after its first sample, so an unchanged shard keeps its name (and its work)."""
+    out: list[tuple[str, int, int]] = []
+    start = 0
+    n = len(sample_ids)
+    for i, sid in enumerate(sample_ids):
+        length = i - start + 1
+        h = int.from_bytes(hashlib.sha256(sid.encode("utf-8", "surrogatepass")).digest()[:8], "big")
+        if (h % size == 0 and length >= max(1, size // 4)) or length >= 4 * size or i == n - 1:
+            out.append((_name(sample_ids[start]), start, length))
+            start = i + 1
+    return out
+
+
+def _name(sample_id: str) -> str:
+    safe = "".join(ch if ch.isalnum() or ch in "-_" else "_" for ch in sample_id)[:48]
+    return f"s{safe}"
 
 
 def read_ref(ref: InputRef) -> pa.Table:

@@ -9,6 +9,7 @@ killed run resumes where it stopped. A damaged work file is recomputed.
 """
 from __future__ import annotations
 
+import bisect
 import hashlib
 import logging
 import os
@@ -59,10 +60,10 @@ class RunResult:
 class _Work:
     """The run's view of the work dir: shard names, source fingerprints, and each stage's fingerprints."""
 
-    def __init__(self, work: Path, plan: Plan, shards: list[str], src_fp: dict[str, str],
-                 offsets: dict[str, tuple[int, int]], actions: decide.Actions):
+    def __init__(self, work: Path, plan: Plan, shards: list[str], source: _Source, actions: decide.Actions):
         self.work, self.plan, self.shards = work, plan, shards
-        self.src_fp, self.offsets, self.actions = src_fp, offsets, actions
+        self.src_fp, self.offsets, self.actions = source.fp, source.offsets, actions
+        self.src_columns = source.columns
         self.fps: dict[str, Any] = {}  # stage -> {shard: fingerprint} or fingerprint
         self.content: dict[str, Any] = {}  # stage -> {shard: content digest} or content digest
         self.pass_of: dict[str, int] = {n: i for i, p in enumerate(plan.passes) for n in p.names}
@@ -89,6 +90,16 @@ class _Work:
                 continue
             by_stage.setdefault(prov, []).append(col)
         return [self.ref(s, shard, tuple(cols)) for s, cols in by_stage.items()]
+
+    def source_fp(self, ps: PlannedStage, shard: str | None) -> list[Any]:
+        """The digests of the source columns a stage reads (a file's size and mtime stand for its
+        bytes wherever the stage reads the file), and the row set."""
+        cols = [c for c in ps.needs if self.plan.providers.get(c) == SOURCE]
+        if "locator" in cols:
+            cols += ["file_size", "mtime_ns"]
+        cols = sorted(set(cols) | {"sample_id"})
+        shards = [shard] if shard else self.shards
+        return [[self.src_columns[s].get(c) for c in cols] for s in shards]
 
     def input_fp(self, ps: PlannedStage, shard: str | None) -> list[Any]:
         """What a stage's output depends on: for inputs computed in the same pass, their fingerprints
@@ -158,18 +169,16 @@ def _run_locked(cfg: PipelineConfig, plan: Plan, actions: decide.Actions, out: P
     if src.num_rows == 0:
         raise InputError(f"input {cfg.input.path} holds no samples (no image files, manifest rows or archive "
                          "members); check --input")
-    size = cfg.input.shard_size
-    shards = layout.shard_names(max(1, -(-src.num_rows // size)))
+    cuts = layout.cut_shards(src.column("sample_id").to_pylist(), cfg.input.shard_size)
+    shards = [name for name, _, _ in cuts]
     result = RunResult(out_dir=str(out), samples=src.num_rows, shards=len(shards), cleared_stale_lock=cleared,
                        notes=notes)
-    src_fp, offsets = _write_source(work, src, shards, size)
     result.seconds["list"] = time.perf_counter() - t0
     eng = engine or make_engine(cfg)
     state: dict[str, Any] = {"shards": len(shards), "samples": src.num_rows, "stages": {}, "finished": False}
     try:
         for attempt in range(MAX_REPAIRS + 1):
-            src_fp, offsets = _write_source(work, src, shards, size)
-            w = _Work(work, plan, shards, src_fp, offsets, actions)
+            w = _Work(work, plan, shards, _write_source(work, src, cuts), actions)
             try:
                 for p in plan.passes:
                     _run_pass(p, w, cfg, eng, progress, result, state)
@@ -182,18 +191,17 @@ def _run_locked(cfg: PipelineConfig, plan: Plan, actions: decide.Actions, out: P
         t2 = time.perf_counter()
         for attempt in range(MAX_REPAIRS + 1):
             try:
-                write_outputs(cfg, out, work, plan, w.shards, w.fps, src_fp, actions, result)
+                write_outputs(cfg, out, work, plan, w.shards, w.fps, w.src_fp, actions, result)
                 break
             except workdir.DamagedWorkFile as e:
                 if attempt == MAX_REPAIRS:
                     raise StageError(f"work files keep failing their checksums ({e})", stage="outputs") from e
                 _repair(e, result, out)
-                src_fp, offsets = _write_source(work, src, shards, size)
-                w = _Work(work, plan, shards, src_fp, offsets, actions)
+                w = _Work(work, plan, shards, _write_source(work, src, cuts), actions)
                 for p in plan.passes:
                     _run_pass(p, w, cfg, eng, progress, result, state)
         result.seconds["pack"] = time.perf_counter() - t2
-        _forget_changed(w, result.changed_rows, size)
+        _forget_changed(w, result.changed_rows)
     finally:
         if engine is None:
             eng.close()
@@ -202,10 +210,11 @@ def _run_locked(cfg: PipelineConfig, plan: Plan, actions: decide.Actions, out: P
     return result
 
 
-def _forget_changed(w: _Work, rows: list[int], size: int) -> None:
+def _forget_changed(w: _Work, rows: list[int]) -> None:
     """Samples whose bytes changed after they were inspected: drop their shards' per-shard outputs,
     so the next run inspects them again (their size and mtime may not show the change)."""
-    for shard in {w.shards[r // size] for r in rows}:
+    starts = [w.offsets[s][0] for s in w.shards]
+    for shard in {w.shards[bisect.bisect_right(starts, r) - 1] for r in rows}:
         for ps in w.plan.stages:
             if ps.stage.kind == "shard":
                 w.path(ps.name, shard).unlink(missing_ok=True)
@@ -220,27 +229,34 @@ def _repair(e: workdir.DamagedWorkFile, result: RunResult, out: Path) -> None:
         pass
 
 
-def _write_source(work: Path, src: pa.Table, shards: list[str], size: int) -> tuple[dict, dict]:
-    """The source table cut into shards; each shard's fingerprint is its content digest."""
-    src_fp: dict[str, str] = {}
-    offsets: dict[str, tuple[int, int]] = {}
-    for i, name in enumerate(shards):
-        part = src.slice(i * size, size)
-        offsets[name] = (i * size, part.num_rows)
-        fp = workdir.table_digest(part)
+@dataclass
+class _Source:
+    fp: dict[str, str]  # shard -> digest of its whole source table
+    columns: dict[str, dict[str, str]]  # shard -> column -> digest
+    offsets: dict[str, tuple[int, int]]  # shard -> (first row in the corpus, rows)
+
+
+def _write_source(work: Path, src: pa.Table, cuts: list[tuple[str, int, int]]) -> _Source:
+    """The source table cut into shards, with per-column content digests (a stage's fingerprint
+    covers only the source columns it reads)."""
+    out = _Source({}, {}, {})
+    for name, start, length in cuts:
+        part = src.slice(start, length)
+        digests = workdir.column_digests(part)
+        fp = workdir.fingerprint(digests)
         path = output_path(work, SOURCE, name)
         if workdir.stored_fingerprint(path) != fp:
             workdir.write_table(path, part, fp=fp)
-        src_fp[name] = fp
-    _remove_stale(work / SOURCE, set(shards))
-    return src_fp, offsets
+        out.fp[name], out.columns[name], out.offsets[name] = fp, digests, (start, length)
+    _remove_stale(work / SOURCE, set(out.fp))
+    return out
 
 
 def _remove_stale(folder: Path, keep: set[str]) -> None:
     """Drop shard files of an earlier, larger listing so they are never read as current."""
     if not folder.exists():
         return
-    for p in folder.glob("s*.parquet"):
+    for p in folder.glob("s*.parquet"):  # shard outputs only (global outputs are all.parquet)
         if p.stem not in keep:
             p.unlink()
 
@@ -301,6 +317,7 @@ def _count(result: RunResult, name: str, computed: bool, samples: int) -> None:
 def _run_shard_pass(p: Pass, w: _Work, cfg: PipelineConfig, eng: Any, progress: Progress,
                     result: RunResult) -> None:
     tasks: list[Task] = []
+    stale = {ps.name: _stale_files(w.work / ps.name, set(w.shards)) for ps in p.stages if ps.stage.cache_key}
     for shard in w.shards:
         runs: list[StageRun] = []
         for ps in p.stages:
@@ -309,30 +326,44 @@ def _run_shard_pass(p: Pass, w: _Work, cfg: PipelineConfig, eng: Any, progress: 
             if ps.stage.alive_only:
                 rows, flags, digest = _alive_rows(w, ps, shard)
                 extra = [digest]
-            fp = shard_fingerprint(ps, [w.src_fp[shard], w.input_fp(ps, shard), extra])
+            fp = shard_fingerprint(ps, [w.source_fp(ps, shard), w.input_fp(ps, shard), extra])
             w.fps.setdefault(ps.name, {})[shard] = fp
-            runs.append(StageRun(ps.name, fp, str(w.path(ps.name, shard)), ps.needs, rows, flags))
+            path = str(w.path(ps.name, shard))
+            runs.append(StageRun(ps.name, fp, path, ps.needs, rows, flags, config_fp=ps.config_fp,
+                                 cache_from=[path, *stale.get(ps.name, [])] if ps.stage.cache_key else []))
         todo = _stale_runs(p, runs)
         n = w.offsets[shard][1]
+        written = {r.name for r in todo if r.write}
         for r in runs:
-            seen = n if r.rows is None else len(r.rows)
-            _count(result, r.name, any(t.name == r.name and t.write for t in todo), seen)
+            if r.name not in written:
+                _count(result, r.name, False, n if r.rows is None else len(r.rows))
         if todo:
             own = {r.name for r in todo}
             needs = tuple(dict.fromkeys(c for r in todo for c in r.needs))
             tasks.append(Task(shard, [w.refs(shard, needs, skip=own)], todo, cfg, _workers(cfg), str(w.work), n))
+    if tasks:
+        progress.start("+".join(p.names), sum(t.rows for t in tasks))
+        if p.inline or len(tasks) == 1:
+            done = [execute(t, progress) for t in tasks]
+        else:
+            done = []
+            for n, stats in eng.map_tasks(tasks, [t.rows for t in tasks]):
+                progress.advance(n)
+                done.append(stats)
+        progress.finish()
+        by_shard = {t.shard: t for t in tasks}
+        for stats in done:
+            for r in by_shard[stats["shard"]].runs:
+                if r.write:
+                    _count(result, r.name, True, stats["computed"].get(r.name, 0))
+                    result.reused_samples[r.name] = result.reused_samples.get(r.name, 0) + stats["reused"].get(r.name, 0)
     for ps in p.stages:
         _remove_stale(w.work / ps.name, set(w.shards))
-    if not tasks:
-        return
-    progress.start("+".join(p.names), sum(t.rows for t in tasks))
-    if p.inline or len(tasks) == 1:
-        for task in tasks:
-            execute(task, progress)
-    else:
-        for n in eng.map_tasks(tasks, [t.rows for t in tasks]):
-            progress.advance(n)
-    progress.finish()
+
+
+def _stale_files(folder: Path, keep: set[str]) -> list[str]:
+    """Outputs of shards that no longer exist (their rows may have moved to other shards)."""
+    return [str(p) for p in sorted(folder.glob("s*.parquet")) if p.stem not in keep] if folder.exists() else []
 
 
 def _stale_runs(p: Pass, runs: list[StageRun]) -> list[StageRun]:
@@ -369,7 +400,7 @@ def _run_global(ps: PlannedStage, w: _Work, cfg: PipelineConfig, progress: Progr
     if ps.stage.alive_only:
         rows, flags, digest = _alive_rows(w, ps, None)
         extra = [digest]
-    fp = shard_fingerprint(ps, [[w.src_fp[s] for s in w.shards], w.input_fp(ps, None), extra])
+    fp = shard_fingerprint(ps, [w.source_fp(ps, None), w.input_fp(ps, None), extra])
     w.fps[ps.name] = fp
     path = w.path(ps.name, None)
     seen = result.samples if rows is None else len(rows)

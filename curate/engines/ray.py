@@ -11,7 +11,7 @@ from ..errors import ConfigError
 from ..execute import execute
 
 
-def _run(task: Any) -> int:
+def _run(task: Any) -> dict:
     return execute(task)
 
 
@@ -35,15 +35,14 @@ class RayEngine:
             self._started = True
         self._remote = ray.remote(num_cpus=cfg.run.ray_task_cpus, max_retries=2)(_run)
 
-    def map_tasks(self, tasks: list[Any], sizes: list[int]) -> Iterator[int]:
+    def map_tasks(self, tasks: list[Any], sizes: list[int]) -> Iterator[tuple[int, dict]]:
         ray = self._ray
         refs = {self._remote.remote(t): n for t, n in zip(tasks, sizes)}
         pending = list(refs)
         while pending:
             done, pending = ray.wait(pending, num_returns=1)
             for r in done:
-                ray.get(r)  # re-raises the task's error
-                yield refs[r]
+                yield refs[r], ray.get(r)  # re-raises the task's error
 
     def close(self) -> None:
         if self._started:

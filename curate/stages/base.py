@@ -131,6 +131,9 @@ class Stage:
     parallel: Literal["process", "inline"] = "process"
     # Extra identity (model name, weights digest, library versions) for the fingerprint and manifest.
     identity: Callable[[ConfigView], dict] | None = None
+    # Input columns that, with the stage's config, determine a row's output: rows whose key an earlier
+    # output of the stage holds are copied from it instead of computed (expensive per-sample stages).
+    cache_key: tuple[str, ...] = ()
     # Extra activity condition beyond the section's `enabled` flag.
     active_if: Callable[[ConfigView], bool] | None = None
     doc: str = ""

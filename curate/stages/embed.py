@@ -194,8 +194,8 @@ def iter_chunks(dataset: ImageChunks, workers: int):
 
 
 @stage(name=NAME, version=VERSION, config=EmbedConfig, kind="shard", phase="model", alive_only=True, sections=("input",),
-       needs=("locator", "caption", "decoded"), wants=("sha256",), provides=columns, checks=CHECKS,
-       parallel="inline", identity=lambda view: identity(view))
+       needs=("locator", "caption", "decoded", "sha256"), provides=columns, checks=CHECKS,
+       parallel="inline", cache_key=("sha256", "caption"), identity=lambda view: identity(view))
 def run(table: pa.Table, cfg: EmbedConfig, ctx: StageContext) -> pa.Table:
     """CLIP image and caption embeddings of every live sample."""
     import torch

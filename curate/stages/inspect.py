@@ -234,7 +234,8 @@ def _decode(img: Any, cols: dict, checks: list[dict], cfg: InspectConfig) -> tup
 
 
 @stage(name=NAME, version=VERSION, config=InspectConfig, kind="shard", phase="check", sections=("input",),
-       needs=("locator", "source_problem"), provides=COLUMNS, checks=CHECKS,
+       needs=("locator", "source_problem", "file_size", "mtime_ns"), provides=COLUMNS, checks=CHECKS,
+       cache_key=("locator", "file_size", "mtime_ns", "source_problem"),
        identity=lambda view: identity())
 def run(table: pa.Table, cfg: InspectConfig, ctx: StageContext) -> pa.Table:
     """Decode every image once, record what it is, and check its size and shape."""
