@@ -275,3 +275,63 @@ def test_config_validation():
                 dict(min_jpeg_quality=101)):
         with pytest.raises(ValueError):
             QualityConfig(**bad).validate()
+
+
+# ----------------------------------------------------------------------------- decoding paths
+
+
+def _with_orientation(data: bytes, orientation: int) -> bytes:
+    """The same JPEG re-saved with an EXIF orientation tag (EXIF 2.3, tag 0x0112)."""
+    from PIL import Image
+
+    img = Image.open(io.BytesIO(data))
+    exif = Image.Exif()
+    exif[0x0112] = orientation
+    buf = io.BytesIO()
+    img.save(buf, "JPEG", quality=90, exif=exif.tobytes())
+    return buf.getvalue()
+
+
+@pytest.mark.parametrize("orientation", [3, 6, 8])
+def test_damage_is_found_in_pictures_turned_by_exif(photos, orientation):
+    # EXIF orientation 3 turns the picture over, 6 and 8 turn it a quarter (EXIF 2.3, tag 0x0112):
+    # the grey fill of a truncated file then sits at the top or on a side, not at the bottom.
+    data = _with_orientation(qb.encode(photos["chelsea"]), orientation)
+    cut = qb.corrupt(data, "truncate", 0.5, random.Random(0))
+    rgb, facts = decode_with_facts(cut)
+    assert facts.truncated
+    assert (rgb.shape[1] < rgb.shape[0]) == (orientation in (6, 8))
+    m = measure(rgb, facts)
+    assert m["decoder_fill_share"] >= 0.3
+    # Without the decoder's word the stepped grey fill still tells (libjpeg fills mid grey).
+    assert measure(rgb, DecodeFacts(format="JPEG"))["decoder_fill_share"] >= 0.3
+
+
+def test_the_decoders_word_decides_for_a_plain_band():
+    # The same pixels, a plain straight band of one colour at the bottom: a picture's own band,
+    # unless the decoder said the data ended early.
+    rng = np.random.default_rng(0)
+    rgb = rng.integers(0, 255, (240, 320, 3)).astype(np.uint8)
+    rgb[160:] = (30, 60, 90)
+    plain = measure(rgb, DecodeFacts(format="JPEG"))
+    cut = measure(rgb, DecodeFacts(format="JPEG", truncated=True))
+    assert plain["decoder_fill_share"] == 0.0
+    assert cut["decoder_fill_share"] == pytest.approx(80 / 240)
+    fails = {c["code"] for c in quality_checks(cut, CFG) if c["failed"]}
+    assert "image_garbled" in fails
+
+
+def test_draft_decoding_keeps_the_verdicts_on_clean_photos(photos):
+    # Inspect may decode big JPEGs at 1/2, 1/4 or 1/8 scale (Pillow draft mode); the measures say
+    # where they stand in the file's own pixels.
+    for n in ("grace_hopper", "hubble_deep_field", "retina"):
+        assert failed(qb.encode(photos[n]), draft_scale=0.5) == set()
+    for n in ("hubble_deep_field", "retina"):  # short side over 512: inspect's default drafts them
+        data = qb.encode(photos[n])
+        assert failed(data, draft_short_side=256) == set()
+        rgb, facts = decode_with_facts(data, draft_short_side=256)
+        assert facts.scale < 1
+        m = measure(rgb, facts)
+        h, w = photos[n].shape[:2]
+        assert (m["width"], m["height"]) == pytest.approx((w, h), rel=0.01)
+        assert (m["content_x1"], m["content_y1"]) == pytest.approx((w, h), rel=0.01)
