@@ -388,7 +388,7 @@ def _timings(cfg: QualityConfig, repeats: int) -> list[str]:
             "exposure (percentiles)": lambda: (q._percentiles(g8, (1, 99)), np.bincount(g8.ravel(), minlength=256)),
             "upscaled (band limit)": lambda: q._band_limit(inner, 8.0),
             "garbled (fill)": lambda: q._decoder_fill(rgb, False, 8),
-            "garbled (seam)": lambda: q._seam(rgb, 8),
+            "garbled (seam)": lambda: q._seam(grey, 8),
             "jpeg quality": lambda: estimate_quality(facts.jpeg_qtables),
             "measure() total": lambda: q.measure(rgb, facts),
             "measure() + quality_checks()": lambda: q.quality_checks(q.measure(rgb, facts), cfg),
@@ -466,7 +466,11 @@ def run(quick: bool = False, repeats: int = 15) -> dict:
                 box_err.append(max(abs(a - b) for a, b in zip(got, (x0, y0, x1, y1))))
             if c.family.startswith("upscale") and "image_upscaled" in codes:
                 ks.setdefault(f"{c.family} {c.level}", []).append(m["upscale_factor"])
-        lines += _table(rows, f"== {group} photos: {', '.join(names)}")
+        # Families in the order made; damage levels from least to most damaged.
+        fam_order = {f: i for i, f in enumerate(dict.fromkeys(f for f, _ in rows))}
+        dmg = {"<1%": 0, "1-10%": 1, "10-50%": 2, ">=50%": 3}
+        keys = sorted(rows, key=lambda k: (fam_order[k[0]], dmg.get(k[1], 0)))
+        lines += _table({k: rows[k] for k in keys}, f"== {group} photos: {', '.join(names)}")
         lines.append(f"false alarms on clean {group} photos: {len(false_alarms)}"
                      + (": " + "; ".join(false_alarms) if false_alarms else ""))
         if box_err:

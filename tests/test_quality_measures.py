@@ -335,3 +335,12 @@ def test_draft_decoding_keeps_the_verdicts_on_clean_photos(photos):
         h, w = photos[n].shape[:2]
         assert (m["width"], m["height"]) == pytest.approx((w, h), rel=0.01)
         assert (m["content_x1"], m["content_y1"]) == pytest.approx((w, h), rel=0.01)
+
+
+def test_missing_measures_pass_with_null_values():
+    # A record for every check even when a measure is missing (e.g. a cache from an older version).
+    recs = quality_checks({}, CFG)
+    assert [r["code"] for r in recs] == ["image_blurred", "image_flat", "image_underexposed", "image_overexposed",
+                                         "image_bordered", "image_upscaled", "image_garbled"]
+    assert all(r["value"] is None for r in recs)
+    assert not any(r["failed"] for r in recs)

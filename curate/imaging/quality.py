@@ -4,12 +4,16 @@
 the decoder's facts into plain numbers; `quality_checks` turns those numbers into check records
 with the thresholds of a `QualityConfig`. Both are pure functions: no files, no printing.
 
-Resolution. Measures of look (blur, flatness, exposure) are taken on the picture inside its
-content box, resized with pixel-area averaging to a short side of `WORK_SHORT_SIDE` px. A trainer
-resizes every picture to its training size, so blur relative to the picture's size is what it
-sees; and every decode at least that large (full or JPEG draft at 1/2, 1/4, 1/8) gives nearly the
-same working image. Measures of the encoding (upscaling, block damage, decoder fill) need the
-decoded pixels themselves and use `DecodeFacts.scale` to speak in the file's own pixels.
+Resolution. The measures of look (blur, flatness, exposure) are defined on a working image: the
+picture inside its content box, shrunk with pixel-area averaging to a short side of
+`WORK_SHORT_SIDE` px (never enlarged). A trainer resizes every picture to its training size, so
+blur relative to the picture's size is what it learns from, and any decode at least that large
+(full, or JPEG draft at 1/2, 1/4, 1/8 as inspect does it) gives nearly the same working image.
+The measures of the encoding (band limit for upscaling, decoder fill and block seams for damage)
+read the decoded pixels and report in the file's own pixels through `DecodeFacts.scale`. A draft
+decode hides enlargements below 1/scale (`upscale_min_visible` says which), and block seams are
+only looked for while a coding block spans 2 or more decoded pixels (scale 1/4 and up).
+bench/quality_checks.py measures how far draft decoding changes the verdicts.
 """
 from __future__ import annotations
 
@@ -52,11 +56,11 @@ _KS = np.exp(np.linspace(np.log(1.25), np.log(8.0), 60))
 # Colours a JPEG decoder leaves where scan data is missing: zeroed coefficients decode to mid
 # grey (Pillow/libjpeg), a zeroed YCbCr buffer converts to green (other decoders; from memory).
 FILL_COLOURS = ((128, 128, 128), (0, 135, 0))
-# A block-boundary seam: a step at least SEAM_RATIO times the row steps beside it plus
-# SEAM_MIN_STEP levels (summed over R, G, B); its cover is the share of the width with such steps,
-# beyond the typical boundary's (set on the tuning photos in bench/quality_checks.py).
+# A block-boundary seam: a luma step at least SEAM_RATIO times the row steps beside it plus
+# SEAM_MIN_STEP levels; its cover is the share of the width with such steps, beyond the typical
+# boundary's (set on the tuning photos in bench/quality_checks.py).
 SEAM_RATIO = 2.0
-SEAM_MIN_STEP = 36.0
+SEAM_MIN_STEP = 12.0
 # Warnings that say the pixel data itself was damaged (not EXIF or ICC trouble).
 _DAMAGE_WARNING = re.compile(r"truncat|premature|corrupt\w* (?:jpeg|image|data)|broken data|damaged", re.I)
 
@@ -380,25 +384,23 @@ def _decoder_fill(rgb: np.ndarray, truncated: bool, block: int) -> float:
     return best
 
 
-def _line_steps(rgb: np.ndarray, axis: int, c0: int, c1: int, seg: int = 16, stride: int = 4) -> np.ndarray:
-    """Mean step between consecutive lines (summed over R, G, B) in `seg`-px segments.
+def _line_steps(grey: np.ndarray, axis: int, c0: int, c1: int, seg: int = 16, stride: int = 4) -> np.ndarray:
+    """Mean luma step between consecutive lines, in `seg`-px segments of each line.
 
-    axis 0: steps between rows (row r minus row r-1, at index r-1), segments along x in c0..c1;
+    axis 0: steps between rows (row r+1 minus row r, at index r), segments along x in c0..c1;
     axis 1: the same between columns. Every `stride`-th pixel along a line is used.
     """
     nseg = (c1 - c0) // seg
     if axis == 0:
-        sub = rgb[:, c0:c0 + nseg * seg:stride].astype(np.int16)
-        d = np.abs(sub[1:] - sub[:-1])
-        d = d[..., 0] + d[..., 1] + d[..., 2]  # (H-1, samples)
+        sub = grey[:, c0:c0 + nseg * seg:stride].astype(np.int16)
+        d = np.abs(sub[1:] - sub[:-1])  # (H-1, samples)
         return d.reshape(d.shape[0], nseg, seg // stride).mean(axis=2)
-    sub = rgb[c0:c0 + nseg * seg:stride].astype(np.int16)
-    d = np.abs(sub[:, 1:] - sub[:, :-1])
-    d = d[..., 0] + d[..., 1] + d[..., 2]  # (samples, W-1)
+    sub = grey[c0:c0 + nseg * seg:stride].astype(np.int16)
+    d = np.abs(sub[:, 1:] - sub[:, :-1])  # (samples, W-1)
     return d.reshape(nseg, seg // stride, d.shape[1]).mean(axis=1).T
 
 
-def _seam(rgb: np.ndarray, block: int, box: tuple[int, int, int, int] | None = None) -> tuple[float, float]:
+def _seam(grey: np.ndarray, block: int, box: tuple[int, int, int, int] | None = None) -> tuple[float, float]:
     """(share of the picture after the strongest block-boundary seam, the seam's width share).
 
     A desynchronised entropy decoder shifts the colour or position of everything after the damage
@@ -411,14 +413,14 @@ def _seam(rgb: np.ndarray, block: int, box: tuple[int, int, int, int] | None = N
     best = (0.0, 0.0)
     if b < 2:
         return best
-    H, W = rgb.shape[:2]
+    H, W = grey.shape
     x0, y0, x1, y1 = box or (0, 0, W, H)
     # Keep two blocks clear of band edges: a band's own edge is a straight step, maybe on the grid.
     m = 2 * b
     x0, y0 = (x0 + m if x0 > 0 else 0), (y0 + m if y0 > 0 else 0)
     x1, y1 = (x1 - m if x1 < W else W), (y1 - m if y1 < H else H)
     for axis, (a0, a1), (c0, c1) in ((0, (y0, y1), (x0, x1)), (1, (x0, x1), (y0, y1))):
-        h = rgb.shape[axis]
+        h = grey.shape[axis]
         if (c1 - c0) // 16 < 4:
             continue
         steps = None
@@ -428,7 +430,7 @@ def _seam(rgb: np.ndarray, block: int, box: tuple[int, int, int, int] | None = N
             if ys.size < 3:
                 continue
             if steps is None:
-                steps = _line_steps(rgb, axis, c0, c1)  # steps[i]: line i+1 minus line i
+                steps = _line_steps(grey, axis, c0, c1)  # steps[i]: line i+1 minus line i
             before, at, after_ = steps[ys - 2], steps[ys - 1], steps[ys]
             cover = (at >= SEAM_RATIO * np.maximum(before, after_) + SEAM_MIN_STEP).mean(axis=1)
             # The seam of one damage point runs along two boundaries: above the row of blocks where
@@ -448,7 +450,8 @@ def _seam(rgb: np.ndarray, block: int, box: tuple[int, int, int, int] | None = N
 def measure(rgb: np.ndarray, facts: DecodeFacts | None = None) -> dict[str, float | None]:
     """Every quality measure of one picture (HxWx3 uint8, EXIF-oriented) as plain numbers.
 
-    Sizes and boxes are in the file's own pixels (decoded pixels divided by `facts.scale`).
+    Sizes and boxes (`content_*`, `native_*`, `width`, `height`) are in the file's own pixels,
+    decoded pixels divided by `facts.scale`. `sharpness` also ranks copies of one picture.
     """
     from .jpeg import estimate_quality
 
@@ -489,7 +492,7 @@ def measure(rgb: np.ndarray, facts: DecodeFacts | None = None) -> dict[str, floa
     out["native_height"] = (y1 - y0) / scale / factor
 
     out["decoder_fill_share"] = _decoder_fill(rgb, bool(facts.truncated), max(1, int(round(block))))
-    after, cover = _seam(rgb, int(round(block)), (x0, y0, x1, y1)) if jpeg else (0.0, 0.0)
+    after, cover = _seam(grey_full, int(round(block)), (x0, y0, x1, y1)) if jpeg else (0.0, 0.0)
     out["seam_after_share"], out["seam_cover"] = after, cover
     out["truncated"] = 1.0 if facts.truncated else 0.0
     out["damage_warnings"] = float(sum(1 for m in facts.warnings if _DAMAGE_WARNING.search(m)))
@@ -511,7 +514,7 @@ CODES: dict[str, tuple[str, str]] = {
     # Flag, not drop: large clipped whites are also how studio shots on white backgrounds look.
     "image_overexposed": ("flag", "washed out or large areas clipped to white"),
     "image_bordered": ("drop", "letterbox, pillarbox or frame bands of near-constant colour"),
-    "image_upscaled": ("drop", "enlarged from a much smaller original"),
+    "image_upscaled": ("drop", "less detail than its pixel count: enlarged from a smaller original (or as blurred)"),
     "image_garbled": ("drop", "damaged image data that still decoded (decoder fill, shifted blocks)"),
     "image_overcompressed": ("drop", "JPEG quality below the configured minimum"),
 }
@@ -571,51 +574,59 @@ def _f(m: dict, k: str) -> float | None:
 def quality_checks(m: dict[str, Any], cfg: QualityConfig) -> list[dict]:
     """Check records for one picture's measures (from `measure`)."""
     out: list[dict] = []
-    sharp = _f(m, "sharpness")
-    out.append(check("image_blurred", value=sharp, threshold=cfg.min_sharpness, op=">=", unit="ratio",
-                     failed=False if sharp is None else None,
-                     detail=f"Laplacian variance {m.get('laplacian_var', 0):.4g} at short side {WORK_SHORT_SIDE} px"))
-    out.append(check("image_flat", value=_f(m, "spatial_info"), threshold=cfg.min_spatial_info, op=">=",
-                     detail=f"luma std {m.get('luma_std', 0):.3g}"))
+
+    def rec(code: str, value: float | None, threshold: float, op: str, unit: str | None, detail: str) -> None:
+        # A measure that could not be taken (picture too small, old cache) passes, value null.
+        out.append(check(code, value=value, threshold=threshold, op=op, unit=unit, detail=detail,
+                         failed=False if value is None else None))
+
+    rec("image_blurred", _f(m, "sharpness"), cfg.min_sharpness, ">=", "ratio",
+        f"Laplacian variance {_f(m, 'laplacian_var') or 0:.4g} at short side {WORK_SHORT_SIDE} px")
+    rec("image_flat", _f(m, "spatial_info"), cfg.min_spatial_info, ">=", None,
+        f"luma std {_f(m, 'luma_std') or 0:.3g}")
 
     # Exposure: each rule is a set of limits that must all be reached; the record's value is the
     # rule's weakest margin (value / limit, or limit / value for upper limits), failing at 1.
     mean, p1, p99 = _f(m, "luma_mean"), _f(m, "luma_p1"), _f(m, "luma_p99")
-    if mean is not None and p1 is not None and p99 is not None:
+    if mean is None or p1 is None or p99 is None:
+        rec("image_underexposed", None, 1.0, "<", "ratio", "no luma statistics")
+        rec("image_overexposed", None, 1.0, "<", "ratio", "no luma statistics")
+    else:
         dark = min(cfg.dark_max_mean / max(mean, 1e-6), cfg.dark_max_p99 / max(p99, 1e-6))
-        out.append(check("image_underexposed", value=dark, threshold=1.0, op="<", unit="ratio",
-                         detail=f"mean luma {mean:.1f} (limit {cfg.dark_max_mean:g}), "
-                                f"99th percentile {p99:.0f} (limit {cfg.dark_max_p99:g})"))
+        rec("image_underexposed", dark, 1.0, "<", "ratio",
+            f"mean luma {mean:.1f} (limit {cfg.dark_max_mean:g}), 99th percentile {p99:.0f} (limit {cfg.dark_max_p99:g})")
         clipped = _f(m, "clip_bright") or 0.0
         blown = clipped / cfg.bright_min_clipped if cfg.bright_min_clipped > 0 else 0.0
         washed = min(mean / cfg.washed_min_mean, p1 / cfg.washed_min_p1) if cfg.washed_min_p1 > 0 else 0.0
-        out.append(check("image_overexposed", value=max(blown, washed), threshold=1.0, op="<", unit="ratio",
-                         detail=f"clipped white {clipped:.3f} (limit {cfg.bright_min_clipped:g}); washed out: "
-                                f"mean {mean:.1f} (limit {cfg.washed_min_mean:g}), 1st percentile {p1:.0f} "
-                                f"(limit {cfg.washed_min_p1:g})"))
+        rec("image_overexposed", max(blown, washed), 1.0, "<", "ratio",
+            f"clipped white {clipped:.3f} (limit {cfg.bright_min_clipped:g}); washed out: mean {mean:.1f} "
+            f"(limit {cfg.washed_min_mean:g}), 1st percentile {p1:.0f} (limit {cfg.washed_min_p1:g})")
 
-    box = [m.get(k) for k in ("content_x0", "content_y0", "content_x1", "content_y1")]
-    out.append(check("image_bordered", value=_f(m, "border_share"), threshold=cfg.max_border_share, op="<=",
-                     unit="share", detail="content box " + ",".join(f"{v:.0f}" for v in box if v is not None)))
-    factor = _f(m, "upscale_factor") or 1.0
-    out.append(check("image_upscaled", value=factor, threshold=cfg.max_upscale_factor, op="<", unit="x",
-                     detail=f"native about {m.get('native_width', 0):.0f}x{m.get('native_height', 0):.0f}; "
-                            f"factors below {m.get('upscale_min_visible', 1.25):.2g} not visible at this decode"))
+    box = [_f(m, k) for k in ("content_x0", "content_y0", "content_x1", "content_y1")]
+    rec("image_bordered", _f(m, "border_share"), cfg.max_border_share, "<=", "share",
+        "content box " + ",".join(f"{v:.0f}" for v in box if v is not None))
+    factor = _f(m, "upscale_factor")
+    if factor is not None and factor > 1.0:
+        up = (f"native about {m.get('native_width', 0):.0f}x{m.get('native_height', 0):.0f} "
+              f"(spectrum falls {m.get('upscale_drop_db') or 0:.1f} dB at its band limit)")
+    else:
+        up = f"no band limit; enlargements under {m.get('upscale_min_visible') or 1.25:.3g}x not visible at this decode"
+    rec("image_upscaled", factor, cfg.max_upscale_factor, "<", "x", up)
 
     fill = _f(m, "decoder_fill_share") or 0.0
     seam = (_f(m, "seam_after_share") or 0.0) if (_f(m, "seam_cover") or 0.0) >= cfg.min_seam_cover else 0.0
-    share = max(fill, seam)
+    measured = m.get("decoder_fill_share") is not None or m.get("seam_cover") is not None
+    share = max(fill, seam) if measured else None
     notes = []
     if m.get("truncated"):
         notes.append("data ended early")
     if m.get("damage_warnings"):
         notes.append(f"{int(m['damage_warnings'])} decoder warning(s)")
     notes.append(f"decoder fill {fill:.3f}, after a block seam {seam:.3f}")
-    out.append(check("image_garbled", value=share, threshold=cfg.max_garbled_share, op="<=", unit="share",
-                     detail="; ".join(notes)))
+    rec("image_garbled", share, cfg.max_garbled_share, "<=", "share", "; ".join(notes))
 
     q = _f(m, "jpeg_quality")
     if cfg.min_jpeg_quality > 0 and q is not None:
-        out.append(check("image_overcompressed", value=q, threshold=cfg.min_jpeg_quality, op=">=",
-                         detail="IJG scale" + ("" if m.get("jpeg_quality_exact") else ", nearest; other encoder")))
+        rec("image_overcompressed", q, cfg.min_jpeg_quality, ">=", None,
+            "IJG scale" + ("" if m.get("jpeg_quality_exact") else ", nearest; other encoder"))
     return out
