@@ -508,7 +508,7 @@ def measure(rgb: np.ndarray, facts: DecodeFacts | None = None) -> dict[str, floa
 
 # Reason codes with their default action and meaning, for the stage that registers them.
 CODES: dict[str, tuple[str, str]] = {
-    "image_blurred": ("drop", "fine detail missing for the picture's size (focus or motion blur)"),
+    "image_blurred": ("drop", "fine detail missing for the picture's size (out of focus or smoothed)"),
     "image_flat": ("drop", "near-blank picture: almost no spatial detail"),
     "image_underexposed": ("drop", "dark throughout with no highlights"),
     # Flag, not drop: large clipped whites are also how studio shots on white backgrounds look.
@@ -554,7 +554,7 @@ class QualityConfig:
 
     def validate(self) -> None:
         for k in ("min_sharpness", "min_spatial_info", "bright_min_clipped", "max_border_share",
-                  "max_garbled_share", "min_jpeg_quality"):
+                  "max_garbled_share", "min_seam_cover", "min_jpeg_quality"):
             if getattr(self, k) < 0:
                 raise ValueError(f"{k} must be >= 0, got {getattr(self, k)}")
         for k in ("bright_min_clipped", "max_border_share", "max_garbled_share", "min_seam_cover"):
