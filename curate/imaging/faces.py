@@ -2,19 +2,23 @@
 
 Detector: OpenCV's frontal-face Haar cascade `haarcascade_frontalface_alt2.xml`, which ships inside
 the opencv-python(-headless) 4.x wheels under `cv2.data.haarcascades` (nothing is downloaded).
-Chosen by measurement (bench/faces.py, scikit-image `data.lfw_subset()` upsampled to 100 px on a
-160 px canvas, and 19 public photos at long side 640): alt2 and alt found 98/100 faces with 0/100
-false alarms on the non-face crops and no face on any of the 17 face-free photos, the cascade
-`default` matched that recall but fired on the coins and the flower photos, and scikit-image's LBP
-cascade (`skimage.feature.Cascade`) also found 98-99/100 but fired on 14 of the 17 face-free photos
-and ran about 5x slower; alt2 was the fastest of the Haar cascades at equal recall.
+Chosen by measurement (bench/faces.py, one run, same settings for all):
+- scikit-image `data.lfw_subset()`, crops upsampled to 100 px on a 160 px canvas: recall on the 100
+  faces 0.98 for alt2 and `default`, 0.97 `alt`, 0.91 scikit-image's LBP cascade
+  (`skimage.feature.Cascade`), 0.32 `alt_tree`; no detector fired on the 100 non-face crops;
+- 17 face-free public photos: alt2, alt and alt_tree fired on none, `default` on 3 (coins, moon,
+  cell), LBP on 6 (and put 4 boxes on the one-face astronaut portrait);
+- the same faces pasted into face-free photos at 5 / 8 / 16% of the short side: alt2 found
+  0.30 / 0.78 / 0.97 of them, the most of the Haar cascades;
+- speed at a 640 px working side, relative to alt2: `default` 1.1x, `alt` 1.2x, LBP 2.9x the time.
 
 Each box's score is its neighbour count: how many overlapping detector windows were merged into it
 (OpenCV `detectMultiScale2`). Real faces collect tens; chance hits on texture collect a few, which
 is what `min_neighbors` rejects.
 
 Caution: a frontal-face cascade misses small, turned (profile), tilted and occluded faces, and face
-detectors have been shown to fail more often for some groups of people. The `face` flag is a
+detectors fail more often for some groups of people (e.g. Dooley et al. 2021, "Robustness
+Disparities in Commercial Face Detection", from memory). The `face` flag is a
 screening aid for human review, not a guarantee that an image holds no face; local law, consent
 and the data's licences decide what may be used.
 """
@@ -36,15 +40,17 @@ class FacesConfig:
     # Cascade file under cv2.data.haarcascades; alt2 chosen by bench/faces.py (see the module docstring).
     cascade: str = "haarcascade_frontalface_alt2.xml"
     # Detection runs on a copy whose long side is at most this many pixels; boxes are mapped back.
-    # 640 keeps a face of 4% of the short side at >= 17 px (bench/faces.py measures the speed per size).
+    # At 640 a face of 5% of a 3:2 photo's short side is ~21 px, just over the cascade's 20 px window;
+    # 480 runs ~1.4x faster but loses those faces (bench/faces.py).
     work_long_side: int = 640
     # Smallest face side counted, as a share of the image's short side (common practice: faces
     # below ~20-30 px are rarely identifiable); never below the cascade's own 20 px window.
     min_face_share: float = 0.04
     # Scale step of the detector's image pyramid; 1.1 is OpenCV's default and tutorial value.
     scale_factor: float = 1.1
-    # Overlapping windows a face needs; the OpenCV tutorial uses 3-5, 5 gave no hits on the face-free
-    # photos in bench/faces.py at equal recall on lfw_subset.
+    # Overlapping windows a face needs; the OpenCV tutorial uses 3-5. With 5, alt2 fired on none of the
+    # face-free photos in bench/faces.py; in a trial run at 2, chance hits on flower.jpg and the coins
+    # collected 3-4 windows each, the two portraits' faces 23 and 36.
     min_neighbors: int = 5
     # Equalise the grey histogram before detection, as the OpenCV face-detection tutorial does.
     equalize: bool = True
