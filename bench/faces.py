@@ -31,9 +31,9 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(ROOT / "bench"))
 
-import photoset  # noqa: E402
-
 from curate.imaging.faces import FacesConfig, detect_faces  # noqa: E402
+
+import photoset  # noqa: E402
 
 PORTRAITS = ("astronaut", "grace_hopper")  # one frontal face each
 # The cameraman (skimage `camera`) looks into his camera: a turned, occluded face. Reported apart.

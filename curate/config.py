@@ -58,6 +58,14 @@ class RunConfig:
     ray_address: str = ""
     # CPUs Ray reserves per shard task; fractions let reads and tasks share small machines.
     ray_task_cpus: float = 1.0
+    # Actors that run model stages (embed), each holding the model once; 0 = one per GPU, or one on a
+    # CPU-only cluster.
+    ray_model_actors: int = 0
+    # GPUs per model actor; -1 = 1 when the cluster has GPUs, else 0.
+    ray_model_gpus: float = -1
+    # CPUs Ray reserves per model actor; a fraction leaves CPUs for the tasks that read shards (on a
+    # 2-CPU machine an actor holding every CPU would starve them).
+    ray_model_cpus: float = 0.5
     # Modules that register extra stages (docs/stages.md): Python files, relative to this config
     # file, or importable module names. They run as your own code does: list only code you trust.
     plugins: list[str] = field(default_factory=list, metadata={"path": True})
@@ -65,8 +73,10 @@ class RunConfig:
     def validate(self) -> None:
         if self.workers < 0:
             raise ValueError(f"workers must be >= 0 (0 = one per CPU core), got {self.workers}")
-        if not self.ray_task_cpus > 0:
-            raise ValueError(f"ray_task_cpus must be > 0, got {self.ray_task_cpus}")
+        if not self.ray_task_cpus > 0 or not self.ray_model_cpus > 0:
+            raise ValueError("ray_task_cpus and ray_model_cpus must be > 0")
+        if self.ray_model_actors < 0 or (self.ray_model_gpus < 0 and self.ray_model_gpus != -1):
+            raise ValueError("ray_model_actors must be >= 0 and ray_model_gpus >= 0 (or -1 = automatic)")
 
 
 @dataclass

@@ -58,6 +58,11 @@ class Actions:
     def codes_with(self, codes: Iterable[str], action: str) -> list[str]:
         return [c for c in codes if c is not None and self.action(c) == action]
 
+    def reason(self, code: str) -> str:
+        """The reason a dropping code records: `risk:<code>` for screening flags, the code otherwise."""
+        spec = spec_for(code, self.specs)
+        return f"risk:{code}" if spec is not None and spec.risk else code
+
     def overridable(self, code: str) -> bool:
         """Whether a reviewer's keep lifts a drop by this code."""
         spec = spec_for(code, self.specs)
@@ -151,8 +156,9 @@ def verdict(stage_checks: Sequence[tuple[str, list]], skipped: dict[str, np.ndar
                 if not c["failed"] or act in ("keep", "overridden"):
                     continue
                 if act == "drop":
-                    if c["code"] not in v.reasons[i]:
-                        v.reasons[i].append(c["code"])
+                    reason = actions.reason(c["code"])
+                    if reason not in v.reasons[i]:
+                        v.reasons[i].append(reason)
                     v.kept[i] = False
                     v.stopped_at[i] = v.stopped_at[i] or stage
                 elif c["code"] not in v.flags[i]:

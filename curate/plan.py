@@ -204,6 +204,12 @@ def build_plan(cfg: PipelineConfig) -> Plan:
         for col in pack_section.NEEDS:
             if col not in providers:
                 raise _missing("pack (the output shards)", "pack", col, cfg)
+        for setting, col, on in pack_section.OPTION_NEEDS:
+            if on(cfg) and col not in providers:
+                prov = _all_providers(cfg).get(col)
+                raise PlanError(f"{setting} needs column {col!r} from stage {prov.name if prov else '?'}, which is "
+                                f"off; set {prov.config_section if prov else '?'}.enabled = true, or "
+                                f"{setting} = false", key=setting)
     columns[FLAGS_BEFORE.name] = FLAGS_BEFORE
     ordered = _order(active, deps)
     planned = [_planned(st, cfg, needs[st.name], providers, ordered) for st in ordered]

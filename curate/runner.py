@@ -343,7 +343,12 @@ def _run_shard_pass(p: Pass, w: _Work, cfg: PipelineConfig, eng: Any, progress: 
             tasks.append(Task(shard, [w.refs(shard, needs, skip=own)], todo, cfg, _workers(cfg), str(w.work), n))
     if tasks:
         progress.start("+".join(p.names), sum(t.rows for t in tasks))
-        if p.inline or len(tasks) == 1:
+        if p.inline and hasattr(eng, "map_model_tasks"):  # a model pass on an engine with model workers
+            done = []
+            for n, stats in eng.map_model_tasks(tasks, [t.rows for t in tasks]):
+                progress.advance(n)
+                done.append(stats)
+        elif p.inline or len(tasks) == 1:
             done = [execute(t, progress) for t in tasks]
         else:
             done = []

@@ -27,6 +27,7 @@ from .config import PipelineConfig
 from .plan import SOURCE, Plan
 from .stages import REGISTRY, Column
 from .stages.inspect import CHANGED
+from .stages.risk import redacted_caption
 
 log = logging.getLogger("curate")
 
@@ -141,7 +142,8 @@ def run_verdict(joined: pa.Table, plan: Plan, actions: decide.Actions) -> decide
 def write_outputs(cfg: PipelineConfig, out: Path, work: Path, plan: Plan, shards: list[str], fps: dict,
                   src_fp: dict, actions: decide.Actions, result: Any) -> dict:
     lcols = ledger_columns(cfg)
-    wanted = {c.name for c in lcols} | {"locator", "decoded", "sha256", "format", "caption"}
+    wanted = {c.name for c in lcols} | {"locator", "decoded", "sha256", "format", "caption", "face_boxes",
+                                        "content_box"}
     wanted |= {c.name for ps in plan.stages for c in ps.columns if c.shard}
     joined = joined_table(work, plan, shards, wanted)
     v = run_verdict(joined, plan, actions)
@@ -250,6 +252,8 @@ def _write_shards(cfg: PipelineConfig, out: Path, plan: Plan, joined: pa.Table,
     split = joined.column("split").take(take).to_pylist() if "split" in joined.column_names else [None] * len(kept)
     locs = joined.column("locator").take(take).to_pylist()
     shas = joined.column("sha256").take(take).to_pylist()
+    extra = {c: joined.column(c).take(take).to_pylist() for c in ("face_boxes", "content_box")
+             if c in joined.column_names}
     by_split: dict[str, list[int]] = {}
     for j, i in enumerate(kept.tolist()):
         s = "quarantine" if v.quarantined[i] else (split[j] or "train")
@@ -266,14 +270,17 @@ def _write_shards(cfg: PipelineConfig, out: Path, plan: Plan, joined: pa.Table,
                 if why is not None:
                     changed[int(kept[j])] = why
                     continue
+                i = int(kept[j])
                 try:
-                    packed = pack_image(raw, pcfg)
+                    packed = pack_image(raw, pcfg, edit=_edits(cfg, {c: extra[c][j] for c in extra}))
                 except Exception as e:  # noqa: BLE001 - inspect decoded it, so this is rare; never a crash
-                    changed[int(kept[j])] = f"cannot be packed: {type(e).__name__}: {e}"[:160]
+                    changed[i] = f"cannot be packed: {type(e).__name__}: {e}"[:160]
                     continue
                 row = {c.name: data[c.name][j] for c in cols if c.name in data}
                 row.update(image=packed.data, image_format=packed.format, width=packed.width, height=packed.height,
-                           split=name, review_flags=v.flags[int(kept[j])])
+                           split=name, review_flags=v.flags[i])
+                if v.redacted[i] and row.get("caption"):
+                    row["caption"] = redacted_caption(row["caption"], v.redacted[i], cfg.risk)
                 writer.add(row)
         entries += writer.close()
     tmp.mkdir(parents=True, exist_ok=True)
@@ -284,6 +291,30 @@ def _write_shards(cfg: PipelineConfig, out: Path, plan: Plan, joined: pa.Table,
     if old.exists():
         shutil.rmtree(old)
     return entries, changed
+
+
+def _edits(cfg: PipelineConfig, facts: dict) -> Any:
+    """The picture edits a shard row needs (faces blurred, bands cropped), as one function, or None."""
+    boxes = facts.get("face_boxes") if getattr(cfg.risk, "face_blur", False) else None
+    box = facts.get("content_box") if cfg.pack.crop_borders else None
+    if not boxes and not box:
+        return None
+
+    def edit(img: Any) -> Any:
+        import numpy as np
+        from PIL import Image
+
+        from .imaging.faces import blur_faces
+        from .imaging.quality import crop_to_content
+
+        rgb = np.asarray(img.convert("RGB"))
+        if boxes:
+            rgb = blur_faces(rgb, [tuple(b) for b in boxes], cfg.faces.blur_margin, cfg.faces.blur_sigma_share)
+        if box:
+            rgb = crop_to_content(rgb, tuple(box))
+        return Image.fromarray(np.ascontiguousarray(rgb))
+
+    return edit
 
 
 def _verify(raw: bytes | Exception, sha: str | None) -> str | None:

@@ -46,3 +46,39 @@ def unpack(value: Any) -> tuple[np.ndarray, float] | None:
 def images(column: pa.ChunkedArray | pa.Array) -> list[tuple[np.ndarray, float] | None]:
     """Every row of an image column as (pixels, scale) or None."""
     return [unpack(v) for v in column.to_pylist()]
+
+
+# What the decoder knew about one picture (the image-quality checks read it): the format, the JPEG
+# quantisation tables (JSON text), Pillow's warnings, whether the data ended early, and the scale.
+FACTS_TYPE = pa.struct(
+    [
+        ("format", pa.string()),
+        ("jpeg_qtables", pa.string()),
+        ("warnings", pa.list_(pa.string())),
+        ("truncated", pa.bool_()),
+        ("scale", pa.float32()),
+    ]
+)
+
+
+def pack_facts(fmt: str | None, qtables: Any, warnings: list[str], truncated: bool, scale: float) -> dict:
+    import json
+
+    tables = None if not qtables else json.dumps({str(int(k)): list(map(int, v)) for k, v in qtables.items()})
+    return {"format": fmt, "jpeg_qtables": tables, "warnings": [str(w)[:200] for w in warnings][:20],
+            "truncated": bool(truncated), "scale": float(scale)}
+
+
+def unpack_facts(value: Any) -> Any:
+    """One value of the facts column -> curate.imaging.quality.DecodeFacts (None for no value)."""
+    import json
+
+    from .quality import DecodeFacts
+
+    if value is None:
+        return None
+    tables = json.loads(value["jpeg_qtables"]) if value.get("jpeg_qtables") else None
+    return DecodeFacts(format=value.get("format"),
+                       jpeg_qtables={int(k): v for k, v in tables.items()} if tables else None,
+                       warnings=list(value.get("warnings") or []), truncated=bool(value.get("truncated")),
+                       scale=float(value.get("scale") or 1.0))

@@ -2,5 +2,5 @@
 
 Registration order does not matter: curate.plan orders the stages from their declared columns.
 """
-from . import agreement, caption, embed, hashes, inspect, neardup, pack, review, risk, split  # noqa: F401
+from . import agreement, caption, embed, faces, hashes, inspect, neardup, pack, quality, review, risk, split, watermark  # noqa: F401
 from .base import REGISTRY, SECTIONS, CheckSpec, Column, ConfigView, Stage, StageContext, all_checks  # noqa: F401

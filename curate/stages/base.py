@@ -58,6 +58,8 @@ class CheckSpec:
     action: str
     help: str
     allowed: tuple[str, ...] = ("drop", "flag", "keep")
+    # Screening flags (faces, personal data, watermarks...) set to drop are recorded as `risk:<code>`.
+    risk: bool = False
 
     def __post_init__(self) -> None:
         if self.action not in self.allowed or not set(self.allowed) <= set(ACTIONS):

@@ -88,7 +88,7 @@ def image_codes(img: Any, cfg: HashesConfig) -> list[int]:
 
 
 @stage(name=NAME, version=VERSION, config=HashesConfig, kind="shard", phase="check", needs=("image", "sha256"),
-       provides=columns, cache_key=("sha256",), identity=lambda view: identity())
+       sections=("inspect",), provides=columns, cache_key=("sha256",), identity=lambda view: identity())
 def run(table: pa.Table, cfg: HashesConfig, ctx: StageContext) -> pa.Table:
     """Perceptual codes of every decoded image's views."""
     out: list[list[int] | None] = []

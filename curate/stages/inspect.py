@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import hashlib
 import io
-import re
+import threading
 import warnings
 from dataclasses import dataclass
 from typing import Any
@@ -23,7 +23,7 @@ from ..sources.base import SOURCE_PROBLEMS
 from .base import CheckSpec, Column, StageContext, checks_column, stage
 
 NAME = "inspect"
-VERSION = "2"
+VERSION = "3"
 
 
 @dataclass
@@ -58,7 +58,9 @@ CHECKS = (
     *(CheckSpec(code, "drop", help, _DROP) for code, help in SOURCE_PROBLEMS.items()),
     CheckSpec("file_empty", "drop", "the image file has zero bytes", _DROP),
     CheckSpec("not_image", "drop", "the bytes are not an image format Pillow knows", _DROP),
-    CheckSpec("truncated", "drop", "the image data ends early", _DROP),
+    # Data that ends early still decodes as far as it goes (the rest is filled); image_garbled can judge
+    # how much is lost, so a reviewer may keep such files.
+    CheckSpec("truncated", "drop", "the image data ends early"),
     CheckSpec("decode_error", "drop", "the image could not be decoded", _DROP),
     CheckSpec("too_many_pixels", "drop", "more pixels than the decompression-bomb guard allows", _DROP),
     CheckSpec("short_side_small", "drop", "short side below the minimum"),
@@ -85,6 +87,8 @@ COLUMNS = (
     Column("place", pa.string(), "a place name from XMP/IPTC metadata"),
     Column("image", decoded.IMAGE_TYPE, "decoded pixels for the other stages of this pass", ledger=False,
            transient=True),
+    Column("decode_facts", decoded.FACTS_TYPE, "what the decoder knew (JPEG tables, warnings, truncation)",
+           ledger=False, transient=True),
 )
 _BASE_FIELDS = [c for c in COLUMNS if not c.transient]
 
@@ -127,30 +131,14 @@ def _orientation(img: Any) -> int:
         return 1
 
 
-_XMP_PLACE = re.compile(
-    rb"(photoshop:City|photoshop:State|photoshop:Country|Iptc4xmpCore:Location|exif:GPSLatitude)"
-    rb"(?:>|=\")([^<\"]{1,80})"
-)
-
-
 def _location(img: Any) -> tuple[bool, str | None]:
-    """(has GPS coordinates, place text) from EXIF GPS IFD 0x8825 and XMP place fields."""
-    gps = False
+    """(has GPS coordinates, place text) from EXIF GPS, XMP and IPTC (curate.imaging.metadata)."""
+    from ..imaging.metadata import read_location
+
     try:
-        ifd = img.getexif().get_ifd(0x8825)
-        # GPS IFD tags 2 (GPSLatitude) and 4 (GPSLongitude), EXIF 2.3 (CIPA DC-008).
-        gps = bool(ifd.get(2)) and bool(ifd.get(4))
-    except Exception:  # a broken EXIF block is not a broken image
-        gps = False
-    place = None
-    xmp = img.info.get("xmp") or img.info.get("XML:com.adobe.xmp")
-    if isinstance(xmp, str):
-        xmp = xmp.encode("utf-8", "replace")
-    if isinstance(xmp, bytes):
-        m = _XMP_PLACE.search(xmp)
-        if m:
-            place = m.group(2).decode("utf-8", "replace").strip() or None
-    return gps, place
+        return read_location(img)
+    except Exception:  # noqa: BLE001 - unreadable metadata is no location, and never a failed decode
+        return False, None
 
 
 def _failed(code: str, detail: str) -> dict:
@@ -191,7 +179,8 @@ def inspect_one(data: bytes | Exception, cfg: InspectConfig) -> tuple[dict, list
 
 
 def _decode(img: Any, cols: dict, checks: list[dict], cfg: InspectConfig) -> tuple[dict, list[dict], Any]:
-    from PIL import Image, ImageOps
+    """Decode an opened image; cols gains what it is, and `_facts` what the decoder knew."""
+    from PIL import Image
 
     w, h = img.size
     cols["format"] = img.format
@@ -205,32 +194,61 @@ def _decode(img: Any, cols: dict, checks: list[dict], cfg: InspectConfig) -> tup
     if w * h > cfg.max_pixels:
         cols["width"], cols["height"] = w, h
         return cols, checks + [_too_many(w * h, cfg)], None
-    if img.format == "JPEG" and cfg.draft_short_side > 0 and min(w, h) > 2 * cfg.draft_short_side:
-        # Draft picks the smallest DCT scale (1/2, 1/4, 1/8) that keeps the requested size.
-        s = cfg.draft_short_side / min(w, h)
-        img.draft("RGB", (max(1, int(img.size[0] * s + 0.999)), max(1, int(img.size[1] * s + 0.999))))
-    try:
-        img.load()
-        img = ImageOps.exif_transpose(img)
-        rgb = to_rgb(img)
-    except OSError as e:
-        msg = str(e)
-        code = "truncated" if "truncat" in msg.lower() or "premature" in msg.lower() else "decode_error"
-        return cols, checks + [_failed(code, msg)], None
-    except Image.DecompressionBombError as e:
-        return cols, checks + [_too_many(str(e), cfg)], None
-    except Exception as e:  # noqa: BLE001
-        return cols, checks + [_failed("decode_error", f"{type(e).__name__}: {e}")], None
+    qtables = getattr(img, "quantization", None)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            rgb, scale, truncated = _load(img, cfg)
+        except OSError as e:
+            return cols, checks + [_failed("decode_error", str(e))], None
+        except Image.DecompressionBombError as e:
+            return cols, checks + [_too_many(str(e), cfg)], None
+        except Exception as e:  # noqa: BLE001
+            return cols, checks + [_failed("decode_error", f"{type(e).__name__}: {e}")], None
     cols["decoded"] = True
     cols["width"], cols["height"] = int(w), int(h)
+    cols["_facts"] = decoded.pack_facts(img.format, qtables, [str(c.message) for c in caught], truncated, scale)
     short, long_ = min(w, h), max(w, h)
     aspect = long_ / max(short, 1)
     checks += [
+        check("truncated", failed=truncated, detail="the data ends early; the rest was filled" if truncated else None),
         check("short_side_small", value=short, threshold=cfg.min_short_side, op=">=", unit="px"),
         check("pixels_small", value=w * h, threshold=cfg.min_pixels, op=">=", unit="pixels"),
         check("aspect_extreme", value=round(aspect, 3), threshold=cfg.max_aspect, op="<=", unit=":1"),
     ]
     return cols, checks, rgb
+
+
+_TRUNCATED_LOCK = threading.Lock()
+
+
+def _load(img: Any, cfg: InspectConfig) -> tuple[Any, float, bool]:
+    """(upright 8-bit RGB image, decoded/true width, whether the data ended early). A JPEG over twice
+    `draft_short_side` is decoded at a reduced DCT scale; data that ends early is decoded as far as
+    it goes (Pillow's LOAD_TRUNCATED_IMAGES, switched on for that one load)."""
+    from PIL import ImageFile, ImageOps
+
+    true_w = img.size[0]
+    if img.format == "JPEG" and cfg.draft_short_side > 0 and min(img.size) > 2 * cfg.draft_short_side:
+        # Draft picks the smallest DCT scale (1/2, 1/4, 1/8) that keeps the requested size.
+        s = cfg.draft_short_side / min(img.size)
+        img.draft("RGB", (max(1, int(img.size[0] * s + 0.999)), max(1, int(img.size[1] * s + 0.999))))
+    truncated = False
+    try:
+        img.load()
+    except OSError as e:
+        if "truncat" not in str(e).lower() and "premature" not in str(e).lower():
+            raise
+        truncated = True
+        with _TRUNCATED_LOCK:  # the switch is process-wide
+            old = ImageFile.LOAD_TRUNCATED_IMAGES
+            ImageFile.LOAD_TRUNCATED_IMAGES = True
+            try:
+                img.load()
+            finally:
+                ImageFile.LOAD_TRUNCATED_IMAGES = old
+    scale = img.size[0] / true_w
+    return to_rgb(ImageOps.exif_transpose(img)), scale, truncated
 
 
 @stage(name=NAME, version=VERSION, config=InspectConfig, kind="shard", phase="check", sections=("input",),
@@ -258,6 +276,7 @@ def run(table: pa.Table, cfg: InspectConfig, ctx: StageContext) -> pa.Table:
         for c in _BASE_FIELDS:
             rows[c.name].append(cols[c.name])
         rows["image"].append(None if rgb is None else decoded.pack(np.asarray(rgb), rgb.size[0] / cols["width"]))
+        rows["decode_facts"].append(cols.get("_facts"))
         all_checks.append(chks)
         if ctx.progress is not None:
             ctx.progress.advance(1)

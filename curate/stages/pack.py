@@ -19,6 +19,11 @@ from .base import register_section
 
 # Columns the shard writer reads; a config whose active stages do not provide them is refused.
 NEEDS = ("caption", "decoded", "sha256", "width", "height", "format")
+# Settings of the shard writer that need a column: (setting, column it needs, is the setting on?).
+OPTION_NEEDS = (
+    ("risk.face_blur", "face_boxes", lambda cfg: bool(getattr(cfg.risk, "face_blur", False))),
+    ("pack.crop_borders", "content_box", lambda cfg: bool(cfg.pack.crop_borders)),
+)
 # Formats kept as they are (common practice: what PIL, torchvision.io and the usual data loaders
 # decode without extra codecs).
 TRAINING_FORMATS = ("JPEG", "PNG", "WEBP")
@@ -42,6 +47,9 @@ class PackConfig:
     # Keep the files' metadata (EXIF, XMP, IPTC: GPS positions, camera serial numbers, names) in the
     # shards. Off by default: training needs none of it and it can identify people and places.
     keep_metadata: bool = False
+    # Crop letterbox, pillarbox and frame bands off (the quality stage's content box), so a sample the
+    # image_bordered check lets through (e.g. its action set to flag) is stored without its bands.
+    crop_borders: bool = False
     # Resize so the short side is this many pixels (never upscales); 0 keeps the size.
     resize_short_side: int = 0
     # A shard closes at this many rows ...
