@@ -164,9 +164,11 @@ def _rule_rows() -> list[dict]:
 
 
 def test_keeper_rule_order_and_determinism():
-    # Rule (documented in neardup): no flags, most pixels, highest agreement, smallest id.
+    # Rule (documented in neardup), here with agreement in the keeper list: no flags, most pixels,
+    # highest agreement, smallest id.
     rows = _rule_rows()
-    out = _by_id(_run(_table(rows)))
+    order = 'neardup.keeper=["unflagged", "pixels", "agreement"]'
+    out = _by_id(_run(_table(rows), order))
     # e has the most pixels but carries a flag; b, c, d tie on pixels; c and d tie on
     # agreement; c has the smaller id.
     for sid in "abde":
@@ -179,11 +181,11 @@ def test_keeper_rule_order_and_determinism():
     for seed in range(3):
         shuffled = rows[:]
         random.Random(seed).shuffle(shuffled)
-        again = _by_id(_run(_table(shuffled)))
+        again = _by_id(_run(_table(shuffled), order))
         assert again == out
     # Without the flag, e (most pixels) keeps the group.
     rows[0]["flags"] = []
-    out2 = _by_id(_run(_table(rows)))
+    out2 = _by_id(_run(_table(rows), order))
     assert out2["c"]["dup_of"] == "e" and out2["e"]["dup_of"] is None
 
 
@@ -256,3 +258,53 @@ def test_codes_matrix_handles_nulls_and_slices():
     chunked = pa.chunked_array([arr.slice(0, 4), arr.slice(4)])
     codes2, valid2 = hashes_mod.codes_matrix(chunked, k)
     assert valid2.sum() == sum(v is not None for v in vals) and codes2[5].tolist() == vals[5]
+
+
+# ----------------------------------------------------------------------------- the best copy is kept
+
+
+def _pair(**diff) -> pa.Table:
+    """Two copies of one picture (same codes) that differ in exactly the given columns."""
+    base = {"width": 800, "height": 600, "format": "JPEG", "jpeg_quality": 90.0, "sharpness": 0.5,
+            "border_share": 0.0, "overlay_share": 0.0, "flags": []}
+    rows = []
+    for sid, which in (("a", 0), ("b", 1)):
+        r = dict(base)
+        for k, (va, vb) in diff.items():
+            r[k] = (va, vb)[which]
+        rows.append(r | {"id": sid})
+    t = _table([{"id": r["id"], "codes": _codes(1), "width": r["width"], "height": r["height"],
+                 "flags": r["flags"]} for r in rows])
+    for col, typ in (("format", pa.string()), ("jpeg_quality", pa.float32()), ("sharpness", pa.float32()),
+                     ("border_share", pa.float32()), ("overlay_share", pa.float32())):
+        t = t.append_column(col, pa.array([r[col] for r in rows], typ))
+    return t
+
+
+@pytest.mark.parametrize("diff,winner,reason", [
+    # Each pair differs in exactly one criterion; the default priority picks the better copy ("a" would
+    # win every tie on sample_id, so "b" winning shows the criterion decided).
+    ({"flags": (["watermark"], [])}, "b", "unflagged"),
+    ({"width": (640, 800), "height": (480, 600)}, "b", "pixels"),
+    ({"jpeg_quality": (70.0, 95.0)}, "b", "fidelity"),
+    ({"format": ("JPEG", "PNG"), "jpeg_quality": (95.0, None)}, "b", "fidelity"),
+    ({"sharpness": (0.3, 0.6)}, "b", "sharpness"),
+    ({"overlay_share": (0.05, 0.0)}, "b", "clean"),
+    ({"border_share": (0.12, 0.0)}, "b", "clean"),
+    ({}, "a", "sample_id"),
+])
+def test_the_best_copy_is_kept(diff, winner, reason):
+    out = _by_id(_run(_pair(**diff)))
+    loser = "a" if winner == "b" else "b"
+    assert out[winner]["dup_of"] is None and out[loser]["dup_of"] == winner
+    assert out[loser]["keep_reason"] == reason
+    assert f"wins on {reason}" in out[loser]["neardup.checks"][0]["detail"]
+
+
+def test_keeper_order_is_configurable():
+    t = _pair(width=(1000, 800), sharpness=(0.2, 0.9))
+    assert _by_id(_run(t))["b"]["dup_of"] == "a"  # pixels first by default
+    out = _by_id(_run(t, 'neardup.keeper=["sharpness", "pixels"]'))
+    assert out["a"]["dup_of"] == "b" and out["a"]["keep_reason"] == "sharpness"
+    with pytest.raises(ConfigError):
+        pipeline_config('neardup.keeper=["prettiest"]')
