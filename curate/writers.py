@@ -43,6 +43,8 @@ CORE_SHARD = (
     Column("split", pa.string()),
     Column("review_flags", pa.list_(pa.string())),
 )
+BUCKET = (Column("bucket", pa.string(), "training bucket WIDTHxHEIGHT ([pack] buckets)", shard=True),
+          Column("bucket_crop", pa.float32(), "share of the image a centre crop to the bucket loses", shard=True))
 VERDICT = (
     Column("kept", pa.bool_()),
     Column("reasons", pa.list_(pa.string())),
@@ -150,11 +152,11 @@ def write_outputs(cfg: PipelineConfig, out: Path, work: Path, plan: Plan, shards
     comp = None if cfg.pack.compression == "none" else cfg.pack.compression
     shard_entries: list[dict] = []
     if cfg.pack.enabled:
-        shard_entries, changed = _write_shards(cfg, out, plan, joined, v)
+        shard_entries, changed = _write_shards(cfg, out, plan, joined, v, assign_buckets(cfg, joined, v))
         if changed:
             _mark_changed(v, changed, result)
             result.changed_rows = sorted(changed)
-    ledger = build_ledger(joined, v, lcols)
+    ledger = build_ledger(joined, v, lcols, assign_buckets(cfg, joined, v))
     workdir.write_table(out / "ledger.parquet", ledger, compression=comp)
     (out / "config.resolved.toml").write_text(
         "# The config this run used: defaults < pipeline file < --set.\n" + cfg.to_toml(), encoding="utf-8"
@@ -181,8 +183,27 @@ def write_outputs(cfg: PipelineConfig, out: Path, work: Path, plan: Plan, shards
     return manifest
 
 
-def build_ledger(joined: pa.Table, v: decide.Verdict, lcols: list[Column]) -> pa.Table:
+def assign_buckets(cfg: PipelineConfig, joined: pa.Table, v: decide.Verdict) -> tuple[list, list]:
+    """Per row: the training bucket ("WxH") and its centre-crop loss, for kept samples when buckets are on."""
+    from .buckets import assign
+    from .stages.pack import bucket_list
+
     n = joined.num_rows
+    bl = bucket_list(cfg.pack)
+    if not bl or "width" not in joined.column_names:
+        return [None] * n, [None] * n
+    names, loss = [None] * n, [None] * n
+    for i, (w, h) in enumerate(zip(joined.column("width").to_pylist(), joined.column("height").to_pylist())):
+        got = assign(w, h, bl) if v.kept[i] else None
+        if got is not None:
+            names[i], loss[i] = f"{got[0][0]}x{got[0][1]}", got[1]
+    return names, loss
+
+
+def build_ledger(joined: pa.Table, v: decide.Verdict, lcols: list[Column],
+                 buckets: tuple[list, list] | None = None) -> pa.Table:
+    n = joined.num_rows
+    buckets = buckets or ([None] * n, [None] * n)
     names = ["sample_id", "source"]
     arrays = [joined.column("sample_id"), joined.column("source")]
     decoded = joined.column("decoded").to_pylist() if "decoded" in joined.column_names else [False] * n
@@ -202,6 +223,9 @@ def build_ledger(joined: pa.Table, v: decide.Verdict, lcols: list[Column]) -> pa
                             for g, sid, d in zip(col.to_pylist(), sids, decoded)], pa.string())
         names.append(c.name)
         arrays.append(col)
+    for c, values in zip(BUCKET, buckets):
+        names.append(c.name)
+        arrays.append(pa.array(values, c.type))
     for name, arr in meta_columns(joined):
         names.append(name)
         arrays.append(arr)
@@ -232,8 +256,8 @@ def _shard_columns(plan: Plan) -> list[Column]:
     return list(out.values())
 
 
-def _write_shards(cfg: PipelineConfig, out: Path, plan: Plan, joined: pa.Table,
-                  v: decide.Verdict) -> tuple[list[dict], dict[int, str]]:
+def _write_shards(cfg: PipelineConfig, out: Path, plan: Plan, joined: pa.Table, v: decide.Verdict,
+                  buckets: tuple[list, list]) -> tuple[list[dict], dict[int, str]]:
     from .sources import read_bytes
     from .stages.pack import pack_image
 
@@ -246,6 +270,10 @@ def _write_shards(cfg: PipelineConfig, out: Path, plan: Plan, joined: pa.Table,
     kept = np.flatnonzero(np.asarray(v.kept, dtype=bool))
     take = pa.array(kept, type=pa.int64())
     data = {c.name: joined.column(c.name).take(take).to_pylist() for c in cols if c.name in joined.column_names}
+    if any(b is not None for b in buckets[0]):
+        for c, values in zip(BUCKET, buckets):
+            cols.append(c)
+            data[c.name] = [values[i] for i in kept.tolist()]
     for name, arr in meta_columns(joined):
         cols.append(Column(name, arr.type))
         data[name] = arr.take(take).to_pylist()
@@ -414,5 +442,7 @@ def summarize(ledger: pa.Table, plan: Plan) -> dict:
         "by_split": dict(Counter(s for s in split if s)),
         "groups": len({g for g in ledger.column("group_id").to_pylist() if g is not None})
         if "group_id" in ledger.column_names else 0,
+        "by_bucket": dict(sorted(Counter(b for b in ledger.column("bucket").to_pylist() if b).items()))
+        if "bucket" in ledger.column_names else {},
         **extra,
     }

@@ -6,6 +6,7 @@ import io
 
 import pandas as pd
 import pyarrow.parquet as pq
+import pytest
 
 from curate import api
 
@@ -133,3 +134,33 @@ def test_shard_columns_do_not_shadow_dataframe_attributes(tmp_path):
     assert "split" in cols and "image" in cols
     clash = [c for c in cols if c in dir(pd.DataFrame)]
     assert not clash, clash
+
+
+def test_buckets_are_generated_from_area_and_step():
+    # SDXL (Podell et al. 2023, sec. 2.3): about 1024^2 pixels, sides multiples of 64.
+    from curate.buckets import assign, make_buckets
+
+    bl = make_buckets(1024 * 1024, 64, 4.0)
+    assert (1024, 1024) in bl and all(w % 64 == 0 and h % 64 == 0 for w, h in bl)
+    assert all(w * h <= 1024 * 1024 and w * h > 0.85 * 1024 * 1024 for w, h in bl)
+    assert all(max(w, h) / min(w, h) <= 4.0 for w, h in bl)
+    assert [b for b in bl if b[0] == b[1]] == [(1024, 1024)]
+    assert {(w, h) for w, h in bl} == {(h, w) for w, h in bl}  # landscape and portrait alike
+    (b, loss) = assign(1920, 1080, bl)
+    assert abs(b[0] / b[1] - 16 / 9) < 0.1 and 0 <= loss < 0.05
+    assert assign(1000, 1000, bl) == ((1024, 1024), 0.0)
+    # A 3:1 panorama centre-cropped to a 2:1 bucket loses a third of its width.
+    assert assign(3000, 1000, [(1408, 704)]) == ((1408, 704), pytest.approx(1 / 3, abs=1e-6))
+
+
+def test_kept_images_get_a_bucket_in_ledger_and_shards(tmp_path):
+    root = make_small_corpus(tmp_path / "in", n=5)
+    out = tmp_path / "out"
+    api.run(None, input=str(root), out=str(out), sets=FAST + ["pack.bucket_area=262144"])
+    led = pq.read_table(out / "ledger.parquet").to_pandas()
+    kept = led[led["kept"]]
+    assert kept["bucket"].notna().all() and (kept["bucket_crop"] >= 0).all()
+    shards = pd.concat([pd.read_parquet(p) for p in sorted((out / "shards").rglob("*.parquet"))])
+    assert set(shards["bucket"]) == set(kept["bucket"])
+    summary = __import__("json").loads((out / "summary.json").read_text())
+    assert sum(summary["by_bucket"].values()) == len(kept)

@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import io
 import warnings
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any, Literal
 
 from .base import register_section
@@ -52,6 +52,15 @@ class PackConfig:
     crop_borders: bool = False
     # Resize so the short side is this many pixels (never upscales); 0 keeps the size.
     resize_short_side: int = 0
+    # Aspect buckets for multi-aspect training (SDXL, Podell et al. 2023, sec. 2.3): a target area in
+    # pixels (e.g. 1048576 for 1024^2) to generate them from, sides multiples of bucket_step; 0 = off.
+    bucket_area: int = 0
+    # Side step of generated buckets (SDXL: 64).
+    bucket_step: int = 64
+    # Largest aspect ratio of a generated bucket (common practice: 4:1, as inspect.max_aspect).
+    bucket_max_aspect: float = 4.0
+    # Or an explicit list of [width, height] buckets (used instead of generating them when given).
+    buckets: list[list[int]] = field(default_factory=list)
     # A shard closes at this many rows ...
     max_rows: int = 10_000
     # ... or at this many bytes of image data (common practice: shards of 100 MB - 1 GB stream well).
@@ -68,8 +77,21 @@ class PackConfig:
             raise ValueError("resize_short_side must be >= 0")
         if self.encode == "original" and self.resize_short_side:
             raise ValueError("resize_short_side needs encode = auto, jpeg, webp or png")
+        if self.bucket_area < 0 or self.bucket_step < 1 or self.bucket_max_aspect < 1:
+            raise ValueError("bucket_area must be >= 0, bucket_step >= 1 and bucket_max_aspect >= 1")
+        if any(len(b) != 2 or min(b) < 1 for b in self.buckets):
+            raise ValueError("buckets must be [width, height] pairs of positive integers")
         if self.keep_alpha and "jpeg" in (self.encode, self.reencode):
             raise ValueError("keep_alpha needs png or webp output (encode, or reencode in auto mode)")
+
+
+def bucket_list(cfg: PackConfig) -> list[tuple[int, int]]:
+    """The configured buckets: the explicit list, else generated from bucket_area (empty: off)."""
+    from ..buckets import make_buckets
+
+    if cfg.buckets:
+        return [(int(w), int(h)) for w, h in cfg.buckets]
+    return make_buckets(cfg.bucket_area, cfg.bucket_step, cfg.bucket_max_aspect)
 
 
 @dataclass(frozen=True)
