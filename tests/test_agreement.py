@@ -49,10 +49,19 @@ def _view(*sets: str):
     return REGISTRY["agreement"].view(pipeline_config(*sets))
 
 
+def _through(table, *sets):
+    """The per-shard pairs step, then the corpus-wide agreement stage, as the runner runs them."""
+    from curate.layout import hstack
+
+    pairs = stage_call("agreement_pairs", table, *sets)
+    both = hstack([pairs, stage_call("agreement", hstack([table, pairs], "test"), *sets)], "test")
+    return both
+
+
 def _run(cosines, *sets):
     """The stage's rows, with only the agreement_low records in the checks column (the fit check
     is tested on its own below; min_fit_auc 0 keeps it out of the way here)."""
-    rows = stage_call("agreement", _table(cosines), "agreement.min_fit_auc=0", *sets).to_pylist()
+    rows = _through(_table(cosines), "agreement.min_fit_auc=0", *sets).to_pylist()
     for r in rows:
         r[checks_column("agreement")] = [c for c in r[checks_column("agreement")] if c["code"] == "agreement_low"]
     return rows
@@ -138,7 +147,9 @@ def test_default_table_and_demo_calibration():
 
 def test_registered_contract():
     st = REGISTRY["agreement"]
-    assert st.kind == "global" and st.alive_only and set(st.needs) == {"image_emb", "text_emb"}
+    assert st.kind == "global" and st.alive_only and set(st.needs) == {"agreement", "shuffled_agreement"}
+    pairs = REGISTRY["agreement_pairs"]
+    assert pairs.kind == "shard" and set(pairs.needs) == {"image_emb", "text_emb"}
     spec = {c.code: c for c in st.checks}["agreement_low"]
     assert spec.action == "drop"
 
@@ -171,9 +182,9 @@ def test_shuffled_pairs_never_keep_a_caption():
     img = rng.normal(size=(50, DIM))
     txt = img + 0.01 * rng.normal(size=(50, DIM))  # every true pair nearly identical
     sh = agreement.shuffled_pairs(img, txt, seed=3)
-    assert len(sh) == 50 and sh.max() < 0.9  # no sample met its own caption
+    assert len(sh) == 50 and np.nanmax(sh) < 0.9  # no sample met its own caption
     assert np.array_equal(sh, agreement.shuffled_pairs(img, txt, seed=3))  # the seed fixes the permutation
-    assert len(agreement.shuffled_pairs(img[:1], txt[:1], seed=0)) == 0
+    assert np.isnan(agreement.shuffled_pairs(img[:1], txt[:1], seed=0)).all()
 
 
 def _random_pairs(n: int, seed: int) -> list[float]:
@@ -185,7 +196,7 @@ def test_a_model_that_does_not_know_the_corpus_drops_nothing():
     # Captions no closer to their own images than to others' (cosines near 0 throughout): the fit
     # AUC sits near chance, so agreement_low is not applied and every scored sample is flagged.
     table = _table(_random_pairs(60, 2))
-    rows = stage_call("agreement", table, "agreement.threshold=0.1").to_pylist()
+    rows = _through(table, "agreement.threshold=0.1").to_pylist()
     for r in rows:
         recs = {c["code"]: c for c in r[checks_column("agreement")]}
         assert set(recs) == {"agreement_unreliable"} and recs["agreement_unreliable"]["failed"]
@@ -193,8 +204,7 @@ def test_a_model_that_does_not_know_the_corpus_drops_nothing():
 
 
 def test_a_model_that_knows_the_corpus_is_applied_and_its_fit_recorded():
-    rows = stage_call("agreement", _table([0.6 + 0.3 * k / 40 for k in range(40)] + [0.05]),
-                      "agreement.threshold=0.3").to_pylist()
+    rows = _through(_table([0.6 + 0.3 * k / 40 for k in range(40)] + [0.05]), "agreement.threshold=0.3").to_pylist()
     recs = [{c["code"]: c for c in r[checks_column("agreement")]} for r in rows]
     assert all(not r["agreement_unreliable"]["failed"] and r["agreement_unreliable"]["value"] > 0.85 for r in recs)
     assert [r["agreement_low"]["failed"] for r in recs] == [False] * 40 + [True]
@@ -202,12 +212,10 @@ def test_a_model_that_knows_the_corpus_is_applied_and_its_fit_recorded():
 
 def test_shuffled_mode_threshold_passes_the_chosen_share_of_shuffled_pairs():
     cos = [0.6 + 0.3 * k / 99 for k in range(100)]
-    rows = stage_call("agreement", _table(cos), "agreement.mode=shuffled",
-                      "agreement.shuffled_pass_percent=5").to_pylist()
+    out = _through(_table(cos), "agreement.mode=shuffled", "agreement.shuffled_pass_percent=5")
+    rows = out.to_pylist()
     rec = [c for c in rows[0][checks_column("agreement")] if c["code"] == "agreement_low"][0]
-    img, _ = agreement.embedding_matrix(_table(cos).column("image_emb"))
-    txt, _ = agreement.embedding_matrix(_table(cos).column("text_emb"))
-    sh = agreement.shuffled_pairs(img, txt, 0)
+    sh = np.array([r["shuffled_agreement"] for r in rows if r["shuffled_agreement"] is not None])
     assert rec["threshold"] == pytest.approx(np.quantile(sh, 0.95))
     assert (sh >= rec["threshold"]).mean() == pytest.approx(0.05, abs=0.02)
     assert "shuffled" in rec["detail"]
@@ -216,8 +224,8 @@ def test_shuffled_mode_threshold_passes_the_chosen_share_of_shuffled_pairs():
 def test_percentile_never_goes_below_the_shuffled_median():
     # Keep the top 100% of a corpus of poor pairs: the cut-off would be the worst true pair, which
     # random captions beat half the time; the shuffled pairs' median is used instead.
-    rows = stage_call("agreement", _table(_random_pairs(60, 4)), "agreement.mode=percentile",
-                      "agreement.keep_percent=100", "agreement.min_fit_auc=0").to_pylist()
+    rows = _through(_table(_random_pairs(60, 4)), "agreement.mode=percentile", "agreement.keep_percent=100",
+                    "agreement.min_fit_auc=0").to_pylist()
     rec = [c for c in rows[0][checks_column("agreement")] if c["code"] == "agreement_low"][0]
     assert "shuffled pairs' median" in rec["detail"]
     assert sum(c["failed"] for r in rows for c in r[checks_column("agreement")] if c["code"] == "agreement_low") > 0

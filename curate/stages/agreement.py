@@ -11,6 +11,7 @@ calibration.
 """
 from __future__ import annotations
 
+import hashlib
 import logging
 import math
 from dataclasses import dataclass
@@ -144,24 +145,22 @@ def percentile_threshold(cos: np.ndarray, keep_percent: float) -> float:
 
 
 COLUMNS = (
-    Column("agreement", pa.float32(), "cosine of the CLIP image and caption embeddings", shard=True),
     Column("clip_score", pa.float32(), "CLIPScore: 2.5 * max(cosine, 0) (Hessel et al. 2021)", shard=True),
 )
 
 
 def shuffled_pairs(img: np.ndarray, txt: np.ndarray, seed: int) -> np.ndarray:
-    """Cosines of mismatched pairs: each image with the caption of another sample, by a random
-    permutation with no fixed point (seeded). Pairs whose two captions embed identically are left
-    out (they would be true pairs)."""
+    """Per row, the cosine of its image with another row's caption: a random permutation that is one
+    cycle through every row (seeded), so no row keeps its own caption. NaN where the other caption
+    embeds identically (that pair would be a true one) and for fewer than two rows."""
     n = img.shape[0]
     if n < 2:
-        return np.zeros(0, np.float32)
+        return np.full(n, np.nan, np.float32)
     order = np.random.default_rng(seed).permutation(n)
     perm = np.empty(n, dtype=np.int64)
-    perm[order] = np.roll(order, -1)  # one random cycle through every sample: no sample keeps its caption
+    perm[order] = np.roll(order, -1)
     same = np.all(txt == txt[perm], axis=1)
-    cos = cosines(img, txt[perm])
-    return cos[~same & np.isfinite(cos)]
+    return np.where(same, np.nan, cosines(img, txt[perm])).astype(np.float32)
 
 
 def fit_auc(true: np.ndarray, shuffled: np.ndarray) -> float | None:
@@ -195,22 +194,53 @@ def _threshold(cfg: AgreementConfig, ctx: StageContext, cos: np.ndarray, shuffle
     return thr, detail
 
 
-@stage(name=NAME, version=VERSION, config=AgreementConfig, kind="global", phase="model", alive_only=True,
-       needs=("image_emb", "text_emb"), sections=("embed",), provides=COLUMNS, checks=CHECKS,
-       identity=lambda view: identity(view))
-def run(table: pa.Table, cfg: AgreementConfig, ctx: StageContext) -> pa.Table:
-    """Does the caption describe the image? CLIP cosine against a threshold, if the model knows the corpus."""
+PAIR_COLUMNS = (
+    Column("agreement", pa.float32(), "cosine of the CLIP image and caption embeddings", shard=True),
+    Column("shuffled_agreement", pa.float32(),
+           "cosine of the image with another sample's caption (a mismatched pair, for the model-fit check)",
+           ledger=False),
+)
+
+
+@stage(name="agreement_pairs", section=NAME, version=VERSION, config=AgreementConfig, kind="shard",
+       phase="model", alive_only=True, needs=("image_emb", "text_emb"), provides=PAIR_COLUMNS)
+def run_pairs(table: pa.Table, cfg: AgreementConfig, ctx: StageContext) -> pa.Table:
+    """Per shard: each sample's image-caption cosine, and one mismatched pair's (captions permuted
+    among the shard's live samples), so the corpus-wide step reads two numbers per sample."""
     n = table.num_rows
     img, img_ok = embedding_matrix(table.column("image_emb"))
     txt, txt_ok = embedding_matrix(table.column("text_emb"))
     cos = cosines(img, txt)
     valid = img_ok & txt_ok & np.isfinite(cos)
-    shuffled = shuffled_pairs(img[valid], txt[valid], cfg.shuffle_seed)
+    shuffled = np.full(n, np.nan, np.float32)
+    idx = np.flatnonzero(valid)
+    if len(idx):
+        # Seeded by the configured seed and the shard's first live sample: the same shard, the same pairs.
+        first = table.column("sample_id")[int(idx[0])].as_py()
+        seed = int.from_bytes(hashlib.sha256(f"{cfg.shuffle_seed}:{first}".encode()).digest()[:8], "big")
+        shuffled[idx] = shuffled_pairs(img[idx], txt[idx], seed)
+    return pa.Table.from_arrays(
+        [table.column("sample_id"), pa.array(np.where(valid, cos, 0.0).astype(np.float32), mask=~valid),
+         pa.array(shuffled, mask=np.isnan(shuffled)), pa.array([[] for _ in range(n)], type=CHECKS_TYPE)],
+        names=["sample_id", "agreement", "shuffled_agreement", checks_column("agreement_pairs")])
+
+
+@stage(name=NAME, version=VERSION, config=AgreementConfig, kind="global", phase="model", alive_only=True,
+       needs=("agreement", "shuffled_agreement"), sections=("embed",), provides=COLUMNS, checks=CHECKS,
+       identity=lambda view: identity(view))
+def run(table: pa.Table, cfg: AgreementConfig, ctx: StageContext) -> pa.Table:
+    """Does the caption describe the image? CLIP cosine against a threshold, if the model knows the corpus."""
+    n = table.num_rows
+    raw = table.column("agreement").to_numpy(zero_copy_only=False)
+    cos = np.asarray(raw, dtype=np.float64)
+    valid = np.isfinite(cos)
+    sh = np.asarray(table.column("shuffled_agreement").to_numpy(zero_copy_only=False), dtype=np.float64)
+    shuffled = sh[np.isfinite(sh)]
     auc = fit_auc(cos[valid], shuffled)
     thr, detail = _threshold(cfg, ctx, cos[valid], shuffled)
     reliable = auc is None or auc >= cfg.min_fit_auc
     fit = check("agreement_unreliable", failed=not reliable, value=auc, threshold=cfg.min_fit_auc, op=">=",
-                unit="ROC AUC", detail=f"true vs shuffled captions, seed {cfg.shuffle_seed}, "
+                unit="ROC AUC", detail=f"true vs shuffled captions (seed {cfg.shuffle_seed}), "
                                         f"{len(shuffled)} shuffled pairs")
     if not reliable:
         log.warning("agreement: the model tells true captions from shuffled ones with ROC AUC %.3f (< %g): it "
@@ -225,14 +255,11 @@ def run(table: pa.Table, cfg: AgreementConfig, ctx: StageContext) -> pa.Table:
         else:
             checks.append([fit, check("agreement_low", value=float(cos[i]), threshold=thr, op=">=", unit="cosine",
                                       detail=detail)])
-    agreement = pa.array(np.where(valid, cos, 0.0).astype(np.float32), mask=~valid)
     score = pa.array(clip_score(np.where(valid, cos, 0.0)).astype(np.float32), mask=~valid)
     if ctx.progress is not None:
         ctx.progress.advance(n)
-    return pa.Table.from_arrays(
-        [table.column("sample_id"), agreement, score, pa.array(checks, type=CHECKS_TYPE)],
-        names=["sample_id", "agreement", "clip_score", checks_column(NAME)],
-    )
+    return pa.Table.from_arrays([table.column("sample_id"), score, pa.array(checks, type=CHECKS_TYPE)],
+                                names=["sample_id", "clip_score", checks_column(NAME)])
 
 
 def identity(config: ConfigView) -> dict:
