@@ -351,7 +351,8 @@ class _Picks:
 # --------------------------------------------------------------------------- picture sections
 
 
-def _check_text(c: dict) -> str:
+def check_text(c: dict) -> str:
+    """A check record's value and pass condition, or its detail when it has no value."""
     if c.get("value") is not None:
         v = format_number(c["value"], c.get("unit"))
         cond = format_condition(c)
@@ -374,7 +375,7 @@ def _cards_for(led: _Ledger, rows: np.ndarray, thumbs: dict, code: str, kind: st
     out = []
     for row in led.rows(rows):
         c = _failing(row, code)
-        facts = [(code, _check_text(c))] + _base_facts(row)
+        facts = [(code, check_text(c))] + _base_facts(row)
         others = [r for r in (row.get("reasons") if kind == "drop" else row.get("flags")) or () if r != code]
         if others:
             facts.append(("also", ", ".join(others)))

@@ -13,7 +13,9 @@ from html import escape
 from typing import Any, Iterable
 
 CAPTION_CHARS = 140  # caption characters shown on a card; the full caption is in its tooltip
-_CONTROL = re.compile("[\x00-\x08\x0b-\x1f\x7f-\x9f]")
+# C0/C1 controls (ECMA-48) and the bidirectional embedding, override and isolate controls, which
+# reorder how text is shown (Unicode UAX #9); tab and newline stay.
+_CONTROL = re.compile("[\x00-\x08\x0b-\x1f\x7f-\x9f\u202a-\u202e\u2066-\u2069]")
 
 CSS = """
 .cards{display:grid;grid-template-columns:repeat(auto-fill,minmax(10.5rem,1fr));gap:.7rem;margin:.5rem 0 1rem}
@@ -39,7 +41,8 @@ border-radius:3px;margin-bottom:.25rem}
 
 
 def text(v: Any) -> str:
-    """Any value as HTML text: escaped (quotes too), control characters and lone surrogates replaced."""
+    """Any value as HTML text: escaped (quotes too); control and bidi-override characters and lone
+    surrogates replaced by U+FFFD."""
     s = "" if v is None else str(v)
     s = s.encode("utf-8", "replace").decode("utf-8")
     return escape(_CONTROL.sub("\ufffd", s), quote=True)
