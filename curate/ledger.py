@@ -168,36 +168,52 @@ def query(out_dir: str | Path, *, reason: str | None = None, flag: str | None = 
     path = Path(out_dir) / "ledger.parquet"
     if not path.exists():
         raise InputError(f"no ledger at {path}: is {out_dir} the --out of a finished `curate run`?")
-    try:
-        names = pq.read_schema(path).names
-    except (OSError, pa.ArrowException) as e:
-        raise InputError(f"the ledger {path} cannot be read ({type(e).__name__}); re-run `curate run`") from e
-    cols = _columns(columns, names)
     if limit is not None and limit < 0:
         raise InputError(f"--limit must be 0 or more, got {limit}")
     if split is not None and not split:
         raise InputError("--split needs a value: train, eval, quarantine or none")
-    need = list(dict.fromkeys(cols + [c for c, on in (("reasons", reason), ("flags", flag), ("kept", kept is not None),
-                                                      ("split", split)) if on]))
-    t = read_ledger(out_dir, columns=need)
-    total = t.num_rows
-    mask = np.ones(total, bool)
-    if reason is not None:
-        mask &= _list_has(t.column("reasons"), reason, prefix=False)
-    if flag is not None:
-        mask &= _list_has(t.column("flags"), flag, prefix=":" not in flag)
-    if kept is not None:
-        k = pc.fill_null(t.column("kept"), False).to_numpy(zero_copy_only=False).astype(bool)
-        mask &= k if kept else ~k
-    if split is not None:
-        col = t.column("split")
-        hit = col.is_null() if split.lower() == "none" else pc.fill_null(pc.equal(col, split), False)
-        mask &= hit.to_numpy(zero_copy_only=False).astype(bool)
-    rows = np.flatnonzero(mask)
-    matched = int(rows.size)
-    if limit is not None:
-        rows = rows[:limit]
-    return Query(t.select(cols).take(pa.array(rows, pa.int64())), matched, total)
+    try:
+        pf = pq.ParquetFile(path)
+        cols = _columns(columns, pf.schema_arrow.names)
+        filters = [c for c, on in (("reasons", reason), ("flags", flag), ("kept", kept is not None),
+                                   ("split", split)) if on]
+        total = pf.metadata.num_rows
+        t = pf.read(columns=filters) if filters else None
+        mask = np.ones(total, bool)
+        if reason is not None:
+            mask &= _list_has(t.column("reasons"), reason, prefix=False)
+        if flag is not None:
+            mask &= _list_has(t.column("flags"), flag, prefix=":" not in flag)
+        if kept is not None:
+            k = pc.fill_null(t.column("kept"), False).to_numpy(zero_copy_only=False).astype(bool)
+            mask &= k if kept else ~k
+        if split is not None:
+            col = t.column("split")
+            hit = col.is_null() if split.lower() == "none" else pc.fill_null(pc.equal(col, split), False)
+            mask &= hit.to_numpy(zero_copy_only=False).astype(bool)
+        rows = np.flatnonzero(mask)
+        matched = int(rows.size)
+        if limit is not None:
+            rows = rows[:limit]
+        return Query(_take_rows(pf, cols, rows), matched, total)
+    except (OSError, pa.ArrowException) as e:
+        raise InputError(f"the ledger {path} cannot be read ({type(e).__name__}); re-run `curate run`") from e
+
+
+def _take_rows(pf: pq.ParquetFile, cols: list[str], rows: np.ndarray) -> pa.Table:
+    """The chosen columns of these rows, reading only the row groups that hold them."""
+    sizes = np.array([pf.metadata.row_group(i).num_rows for i in range(pf.num_row_groups)], np.int64)
+    starts = np.r_[0, np.cumsum(sizes)]
+    group_of = np.searchsorted(starts, rows, side="right") - 1
+    groups = np.unique(group_of)
+    if not groups.size:
+        return pf.schema_arrow.empty_table().select(cols)
+    part = pf.read_row_groups([int(g) for g in groups], columns=cols).replace_schema_metadata(None)
+    # in `part` the groups read follow one another: a row sits at its group's offset there plus its
+    # position inside the group
+    offset_in_part = np.r_[0, np.cumsum(sizes[groups])][:-1]
+    local = offset_in_part[np.searchsorted(groups, group_of)] + rows - starts[group_of]
+    return part.take(pa.array(local, pa.int64()))
 
 
 def _columns(columns: list[str] | None, names: list[str]) -> list[str]:

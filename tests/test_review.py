@@ -52,20 +52,20 @@ def make_run(tmp: Path, rows: list[dict] | None = None, *, extra: dict | None = 
     _photo_files(inp / "pics")
     if rows is None:
         rows = [
-            dict(sample_id="a0000000000000001", source="pics/photo0.jpg", kept=True, reasons=[], flags=["face"],
-                 split="train", group_id="a0000000000000001", checks=[_chk("face", True, "flag")]),
-            dict(sample_id="b0000000000000002", source="pics/photo1.jpg", kept=False, reasons=["agreement_low"],
-                 flags=[], split=None, group_id="b0000000000000002",
+            dict(sample_id="a000000000000001", source="pics/photo0.jpg", kept=True, reasons=[], flags=["face"],
+                 split="train", group_id="a000000000000001", checks=[_chk("face", True, "flag")]),
+            dict(sample_id="b000000000000002", source="pics/photo1.jpg", kept=False, reasons=["agreement_low"],
+                 flags=[], split=None, group_id="b000000000000002",
                  checks=[_chk("agreement_low", True, value=0.1, threshold=0.28, op=">=", unit="cosine")]),
-            dict(sample_id="c0000000000000003", source="pics/photo2.jpg", kept=True, reasons=[], flags=[],
-                 split="train", group_id="c0000000000000003", checks=[]),
-            dict(sample_id="d0000000000000004", source="pics/photo3.jpg", kept=False, reasons=["duplicate"],
-                 flags=["pii:email"], split=None, group_id="c0000000000000003", dup_of="c0000000000000003",
+            dict(sample_id="c000000000000003", source="pics/photo2.jpg", kept=True, reasons=[], flags=[],
+                 split="train", group_id="c000000000000003", checks=[]),
+            dict(sample_id="d000000000000004", source="pics/photo3.jpg", kept=False, reasons=["duplicate"],
+                 flags=["pii:email"], split=None, group_id="c000000000000003", dup_of="c000000000000003",
                  dup_signal="phash", dup_distance=2.0,
                  checks=[_chk("duplicate", True, value=2, threshold=8, op=">", unit="bits"),
                          _chk("pii:email", True, "flag")]),
-            dict(sample_id="e0000000000000005", source=HOSTILE_SOURCE, kept=True, reasons=[], flags=["face"],
-                 split="quarantine", group_id="e0000000000000005", checks=[_chk("face", True, "quarantine")],
+            dict(sample_id="e000000000000005", source=HOSTILE_SOURCE, kept=True, reasons=[], flags=["face"],
+                 split="quarantine", group_id="e000000000000005", checks=[_chk("face", True, "quarantine")],
                  caption='<img src=x onerror="document.title=1">'),
         ]
     cols = {"sample_id": pa.string(), "source": pa.string(), "caption": pa.string(), "kept": pa.bool_(),
@@ -119,8 +119,8 @@ def test_default_set_is_everything_dropped_flagged_or_quarantined(tmp_path):
     run = make_run(tmp_path)
     res = review(run, out=tmp_path / "r" / "decisions.csv")
     rows = read_decisions(res["decisions"])
-    assert [r["sample_id"] for r in rows] == ["a0000000000000001", "b0000000000000002", "d0000000000000004",
-                                              "e0000000000000005"]  # c...3 is kept and unflagged
+    assert [r["sample_id"] for r in rows] == ["a000000000000001", "b000000000000002", "d000000000000004",
+                                              "e000000000000005"]  # c...3 is kept and unflagged
     # pre-filled with today's verdict; a note column left for the reviewer
     assert [r["decision"] for r in rows] == ["keep", "drop", "drop", "keep"] and all(r["note"] == "" for r in rows)
     # RFC 4180 (csv module): the header is exactly the decisions columns, and a source with a comma,
@@ -139,13 +139,13 @@ def test_jsonl_and_filters(tmp_path):
     run = make_run(tmp_path)
     res = review(run, reason="agreement_low", out=tmp_path / "a.jsonl")
     lines = Path(res["decisions"]).read_text(encoding="utf-8").splitlines()
-    assert [json.loads(x) for x in lines] == [{"sample_id": "b0000000000000002", "source": "pics/photo1.jpg",
+    assert [json.loads(x) for x in lines] == [{"sample_id": "b000000000000002", "source": "pics/photo1.jpg",
                                                "decision": "drop", "note": ""}]
     assert res["format"] == "jsonl" and res["rows"] == res["matched"] == 1
     flagged = read_decisions(review(run, flag="face", out=tmp_path / "f.csv")["decisions"])
-    assert [r["sample_id"] for r in flagged] == ["a0000000000000001", "e0000000000000005"]
+    assert [r["sample_id"] for r in flagged] == ["a000000000000001", "e000000000000005"]
     family = read_decisions(review(run, flag="pii", out=tmp_path / "p.csv")["decisions"])
-    assert [r["sample_id"] for r in family] == ["d0000000000000004"]
+    assert [r["sample_id"] for r in family] == ["d000000000000004"]
     both = review(run, reason="duplicate", flag="face", out=tmp_path / "none.csv")
     assert both["rows"] == 0 and read_decisions(both["decisions"]) == []
     assert "No sample matches." in Path(both["sheet"]).read_text()
@@ -155,10 +155,10 @@ def test_group_mode_lists_whole_groups_keeper_first(tmp_path):
     run = make_run(tmp_path)
     res = review(run, group=True, out=tmp_path / "g.csv")
     rows = read_decisions(res["decisions"])
-    assert [r["sample_id"] for r in rows] == ["c0000000000000003", "d0000000000000004"]
+    assert [r["sample_id"] for r in rows] == ["c000000000000003", "d000000000000004"]
     assert [r["decision"] for r in rows] == ["keep", "drop"]
     sheet = Path(res["sheet"]).read_text(encoding="utf-8")
-    assert 'data-group="c0000000000000003"' in sheet and "phash, 2" in sheet
+    assert 'data-group="c000000000000003"' in sheet and "phash, 2" in sheet
 
 
 def test_limit_and_thumbnails(tmp_path):
