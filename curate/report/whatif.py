@@ -33,7 +33,9 @@ class Coded:
     @property
     def _pos(self) -> dict[str, int]:
         if self._pos_map is None:
-            self._pos_map = {w: i for i, w in enumerate(self.words)}
+            self._pos_map = {}
+            for i, w in enumerate(self.words):
+                self._pos_map.setdefault(w, i)
         return self._pos_map
 
     def __eq__(self, word: object) -> np.ndarray:  # type: ignore[override]
@@ -128,7 +130,7 @@ def flatten(ledger: pa.Table) -> Records:
         rows.append(np.repeat(np.arange(offset, offset + len(chunk), dtype=np.int64), lengths))
         flat = pc.list_flatten(chunk)
         for k in _TEXT:
-            text[k].append(pc.fill_null(flat.field(k), ""))
+            text[k].append(flat.field(k))
         for k in ("value", "threshold"):
             nums[k].append(pc.fill_null(flat.field(k).cast(pa.float64()), np.nan).to_numpy(zero_copy_only=False))
         nums["failed"].append(pc.fill_null(flat.field("failed"), False).to_numpy(zero_copy_only=False))
@@ -146,16 +148,21 @@ _TEXT = ("code", "op", "unit", "action", "status")
 
 
 def coded(arr: pa.ChunkedArray | pa.Array) -> Coded:
-    """Dictionary-encode a string array (nulls must be filled first) into a Coded column."""
+    """Dictionary-encode a string array into a Coded column (null reads as "")."""
     if isinstance(arr, pa.ChunkedArray):
         arr = arr.combine_chunks() if arr.num_chunks else pa.array([], pa.string())
-    enc = pc.dictionary_encode(arr)
-    return Coded(enc.indices.to_numpy(zero_copy_only=False).astype(np.int32), enc.dictionary.to_pylist())
+    enc = pc.dictionary_encode(arr, null_encoding="encode")
+    words = ["" if w is None else w for w in enc.dictionary.to_pylist()]
+    idx = enc.indices.to_numpy(zero_copy_only=False).astype(np.int32)
+    if "" in words and words.count("") > 1:  # both null and "" present: one code for both
+        first = words.index("")
+        idx = np.where(np.isin(idx, [i for i, w in enumerate(words) if w == ""]), first, idx).astype(np.int32)
+    return Coded(idx, words)
 
 
 def _strings(arr: pa.Array) -> np.ndarray:
     """A string array as an object array (null -> ""), each distinct value decoded once."""
-    c = coded(pc.fill_null(arr, ""))
+    c = coded(arr)
     return np.array(c.words, dtype=object)[c.idx] if c.words else np.zeros(len(arr), dtype=object)
 
 
@@ -166,13 +173,21 @@ def curves(ledger: pa.Table, points: int = POINTS, rec: Records | None = None) -
         return []
     n = rec.n
     drop_fail = (rec.status == "fail") & (rec.action == "drop")
+    per_row_drops = np.bincount(rec.row[drop_fail], minlength=n)
     skipped_rows = np.bincount(rec.row[rec.status == "skipped"], minlength=n) > 0
-    numeric = ~np.isnan(rec.value) & ~np.isnan(rec.threshold) & rec.op.isin(SWEEPABLE)
+    numeric = np.flatnonzero(~np.isnan(rec.value) & ~np.isnan(rec.threshold) & rec.op.isin(SWEEPABLE))
     n_op, n_unit = len(rec.op.words) or 1, len(rec.unit.words) or 1
     key = (rec.code.idx[numeric].astype(np.int64) * n_op + rec.op.idx[numeric]) * n_unit + rec.unit.idx[numeric]
-    found = [(int(k) // (n_op * n_unit), int(k) // n_unit % n_op, int(k) % n_unit) for k in np.unique(key)]
-    keys = sorted((rec.code.words[c], rec.op.words[o], rec.unit.words[u]) for c, o, u in found)
-    out = [_curve(rec, n, code, op, unit, numeric, drop_fail, skipped_rows, points) for code, op, unit in keys]
+    order = np.argsort(key, kind="stable")  # records of one check together, still in ledger order
+    bounds = np.flatnonzero(np.r_[True, key[order][1:] != key[order][:-1], True])
+    out = []
+    for start, end in zip(bounds[:-1], bounds[1:]):
+        k = int(key[order[start]])
+        code, op, unit = (rec.code.words[k // (n_op * n_unit)], rec.op.words[k // n_unit % n_op],
+                          rec.unit.words[k % n_unit])
+        mine = numeric[order[start:end]]
+        out.append(_curve(rec, n, code, op, unit, mine, drop_fail, per_row_drops, skipped_rows, points))
+    out.sort(key=lambda c: (c.code, c.op, c.unit))
     return [c for c in out if c.xs.size > 1]  # a structural check (e.g. "empty": > 0) has nothing to sweep
 
 
@@ -186,10 +201,9 @@ def _worst(rows: np.ndarray, margin: np.ndarray, lowest: bool) -> tuple[np.ndarr
     return r[first], m[first]
 
 
-def _curve(rec: Records, n: int, code: str, op: str, unit: str, numeric: np.ndarray, drop_fail: np.ndarray,
-           skipped_rows: np.ndarray, points: int) -> Curve:
-    same_code = rec.code == code
-    mine = numeric & same_code & (rec.op == op) & (rec.unit == unit)
+def _curve(rec: Records, n: int, code: str, op: str, unit: str, mine: np.ndarray, drop_fail: np.ndarray,
+           per_row_drops: np.ndarray, skipped_rows: np.ndarray, points: int) -> Curve:
+    """mine: indices of this check's numeric records, in ledger order."""
     act_i, act_n = np.unique(rec.action.idx[mine], return_counts=True)
     action = rec.action.words[int(act_i[np.argmax(act_n)])] or "drop"
     thr = rec.threshold[mine]
@@ -201,7 +215,8 @@ def _curve(rec: Records, n: int, code: str, op: str, unit: str, numeric: np.ndar
     has = np.zeros(n, bool)
     has[rows] = True
     if action == "drop":
-        other = np.bincount(rec.row[drop_fail & ~mine], minlength=n) > 0  # dropped whatever this threshold is
+        # dropped whatever this threshold is: some other record drops the row
+        other = (per_row_drops - np.bincount(rec.row[mine[drop_fail[mine]]], minlength=n)) > 0
         cand = ~other[rows]
         unseen = skipped_rows[rows]
         base = ~other & ~has
@@ -209,7 +224,8 @@ def _curve(rec: Records, n: int, code: str, op: str, unit: str, numeric: np.ndar
         lower = Counter(op, action, current, np.sort(worst[cand & ~unseen]), int((base & ~skipped_rows).sum()), 0)
     else:
         # samples this check hits at t: a failing value, or a failing record of the code without a value
-        fixed = same_code & ~mine & (rec.status == "fail")
+        fixed = (rec.code == code) & (rec.status == "fail")
+        fixed[mine] = False
         fixed_rows = np.zeros(n, bool)
         fixed_rows[rec.row[fixed]] = True
         upper = lower = Counter(op, action, current, np.sort(worst), 0, int((fixed_rows & ~has).sum()))
