@@ -24,7 +24,7 @@ from curate import __version__
 from curate.config import load_config
 from curate.decide import LEDGER_CHECK
 from curate.plan import config_sections
-from curate.report import MAX_THUMBS, THUMBS_PER_CODE, _thresholds, keeper_reason, svg, whatif, write_report
+from curate.report import MAX_THUMBS, THUMBS_PER_CODE, keeper_reason, svg, thresholds, whatif, write_report
 from curate.report.images import THUMB, thumbnail
 from curate.writers import summarize
 
@@ -275,12 +275,17 @@ def test_thumbnails_are_sampled_capped_and_read_in_one_call(tmp_path):
     assert len(set(calls[0])) == len(calls[0]) <= MAX_THUMBS
 
 
-def test_many_codes_stay_under_the_page_cap(tmp_path):
-    rows = [_row(i, False, reasons=[f"code_{i % 90:02d}"], agreement=None, stopped="inspect") for i in range(900)]
+@pytest.mark.parametrize("codes", [90, 300])
+def test_many_codes_stay_under_the_page_cap(tmp_path, codes):
+    rows = [_row(i, False, reasons=[f"code_{i % codes:03d}"], agreement=None, stopped="inspect")
+            for i in range(3 * codes)]
     calls = []
     path, page, _ = _write(tmp_path, _ledger(rows), load_images=_loader(_photos(), calls))
     assert len(calls[0]) <= MAX_THUMBS and len([c for c in page.cards if c["img"]]) <= MAX_THUMBS
-    assert path.stat().st_size < 4_000_000
+    assert len(page.cards) <= MAX_THUMBS and path.stat().st_size < 4_000_000
+    # every reason still has its heading with its count, pictures or not
+    heads = [h for tag, h in page.tags if tag == "h3" and h.get("data-code")]
+    assert len(heads) == codes
 
 
 def test_a_failing_loader_leaves_a_note_not_a_crash(tmp_path):
@@ -325,9 +330,10 @@ def test_run_facts_model_digest_stage_times_and_config_sources(tmp_path):
 
 
 def test_agreement_threshold_is_read_from_checks():
-    led = _mixed()
-    assert _thresholds(led.column("checks").to_pylist(), "agreement_low") == [0.28]
-    assert _thresholds([[_chk("x", "agreement_low", 0.2, -0.05, ">=", "cosine", True)]], "agreement_low") == [-0.05]
+    assert thresholds(whatif.flatten(_mixed()), "agreement_low") == [0.28]
+    one = _ledger([_row(0, False, checks=[_chk("x", "agreement_low", 0.2, -0.05, ">=", "cosine", True)])])
+    assert thresholds(whatif.flatten(one), "agreement_low") == [-0.05]
+    assert thresholds(whatif.flatten(_ledger([])), "agreement_low") == []
 
 
 def test_same_inputs_give_identical_bytes(tmp_path):

@@ -30,8 +30,6 @@ QUARANTINE_THUMBS = 16  # thumbnails of the quarantine set
 GROUPS_SHOWN = 8  # largest near-duplicate groups drawn side by side
 MEMBERS_PER_GROUP = 6  # members drawn per group (keeper first, then the closest copies)
 MAX_THUMBS = 400  # thumbnails in the whole page: about 4-6 KB each, so under ~2.5 MB of pictures
-EXAMPLES_PER_REASON = THUMBS_PER_CODE
-CAPTION_CHARS = cards.CAPTION_CHARS
 
 CSS = """
 body{margin:0;background:#faf7f2;color:#2b2b2b;font:15px/1.5 system-ui,-apple-system,"Segoe UI",Roboto,
@@ -141,7 +139,7 @@ def render(ledger: pa.Table, summary: dict, cfg: Any, *, load_images: ImageLoade
     body += _quarantine(picks, thumbs)
     body += _groups(picks, thumbs, summary)
     body += _whatif(rec, ledger)
-    agree_thr = sorted({float(t) for t in rec.threshold[(rec.code == "agreement_low") & ~np.isnan(rec.threshold)]})[:3]
+    agree_thr = thresholds(rec, "agreement_low")
     body += _section("Caption-image agreement", plots.agreement(led.floats("agreement"), led.kept, agree_thr),
                      "No agreement scores in this run (the agreement stage did not run or no sample reached it).",
                      anchor="agreement")
@@ -169,6 +167,11 @@ _TOC = [("facts", "Run facts"), ("stopped", "Where samples stopped"), ("reasons"
         ("quarantine", "Quarantine"), ("groups", "Near-duplicate groups"), ("whatif", "What-if curves"),
         ("agreement", "Agreement"), ("sizes", "Image sizes"), ("splits-h", "Splits"), ("config", "Config"),
         ("cautions-h", "Cautions")]
+
+
+def thresholds(rec: whatif.Records, code: str) -> list[float]:
+    """Distinct thresholds the records of one code carry (at most 3, smallest first)."""
+    return sorted({float(t) for t in rec.threshold[(rec.code == code) & ~np.isnan(rec.threshold)]})[:3]
 
 
 def _fp(cfg: Any) -> str:
@@ -232,7 +235,7 @@ class _Ledger:
         sid = t.column("sample_id") if "sample_id" in t.column_names else pa.nulls(self.n, pa.string())
         self.rank = np.empty(self.n, np.int64)  # order of sample_id: sampling by it spreads over the corpus
         self.rank[pc.sort_indices(sid).to_numpy()] = np.arange(self.n)
-        self._lists: dict[str, tuple[np.ndarray, np.ndarray]] = {}
+        self._lists: dict[str, tuple[np.ndarray, whatif.Coded]] = {}
 
     def has(self, name: str) -> bool:
         return name in self.t.column_names
@@ -253,18 +256,22 @@ class _Ledger:
             return whatif.Coded(np.zeros(self.n, np.int32), [""])
         return whatif.coded(pc.fill_null(self.t.column(name), ""))
 
-    def list_rows(self, name: str) -> tuple[np.ndarray, np.ndarray]:
+    def list_rows(self, name: str) -> tuple[np.ndarray, whatif.Coded]:
         """(row, value) for every entry of a list<string> column (reasons, flags)."""
         if name not in self._lists:
-            rows, vals = [np.zeros(0, np.int64)], [np.zeros(0, object)]
+            rows, vals = [np.zeros(0, np.int64)], []
             offset = 0
             for chunk in (self.t.column(name).chunks if self.has(name) else []):
                 lengths = pc.fill_null(pc.list_value_length(chunk), 0).to_numpy(zero_copy_only=False)
                 rows.append(np.repeat(np.arange(offset, offset + len(chunk), dtype=np.int64), lengths))
-                vals.append(whatif._strings(pc.list_flatten(chunk)))
+                vals.append(pc.list_flatten(chunk))
                 offset += len(chunk)
-            self._lists[name] = (np.concatenate(rows), np.concatenate(vals))
+            self._lists[name] = (np.concatenate(rows), whatif.coded(pa.chunked_array(vals, pa.string())))
         return self._lists[name]
+
+    def codes(self, name: str) -> list[str]:
+        rows, vals = self.list_rows(name)
+        return sorted({vals.words[i] for i in np.unique(vals.idx)})
 
     def with_code(self, name: str, code: str) -> np.ndarray:
         rows, vals = self.list_rows(name)
@@ -273,6 +280,8 @@ class _Ledger:
     def sample(self, rows: np.ndarray, k: int) -> np.ndarray:
         """Up to k rows: those with the smallest sample_ids, in that order."""
         rows = np.asarray(rows, np.int64)
+        if k <= 0:
+            return rows[:0]
         if rows.size > k:
             rows = rows[np.argpartition(self.rank[rows], k - 1)[:k]]
         return rows[np.argsort(self.rank[rows], kind="stable")]
@@ -288,23 +297,20 @@ class _Picks:
 
     def __init__(self, led: _Ledger, summary: dict):
         self.led = led
-        budget = MAX_THUMBS
         self.drops: dict[str, tuple[np.ndarray, int]] = {}
         self.flags: dict[str, tuple[np.ndarray, int]] = {}
-        reasons = list(summary.get("by_reason", {})) or sorted(set(led.list_rows("reasons")[1]))
-        flags = list(summary.get("by_flag", {})) or sorted(set(led.list_rows("flags")[1]))
-        per = THUMBS_PER_CODE
-        wanted = len(reasons) + len(flags)
-        if wanted * per > budget * 3 // 4:  # many codes: fewer each, so groups and quarantine still fit
-            per = max(2, (budget * 3 // 4) // max(wanted, 1))
-        for r in reasons:
-            rows = led.with_code("reasons", r)
-            rows = rows[~led.kept[rows]]
-            self.drops[r] = (led.sample(rows, per), int(rows.size))
-        for f in flags:
-            rows = led.with_code("flags", f)
-            rows = rows[led.kept[rows]]
-            self.flags[f] = (led.sample(rows, per), int(rows.size))
+        reasons = list(summary.get("by_reason", {})) or led.codes("reasons")
+        flags = list(summary.get("by_flag", {})) or led.codes("flags")
+        # the page's picture budget: quarantine and groups first, the rest shared by the codes
+        left = MAX_THUMBS - QUARANTINE_THUMBS - GROUPS_SHOWN * MEMBERS_PER_GROUP
+        per = min(THUMBS_PER_CODE, max(2, left // max(len(reasons) + len(flags), 1)))
+        for kind, codes, want_kept in (("reasons", reasons, False), ("flags", flags, True)):
+            for code in codes:
+                rows = led.with_code(kind, code)
+                rows = rows[led.kept[rows] == want_kept]
+                take = max(0, min(per, left))
+                left -= min(take, rows.size)
+                (self.drops if kind == "reasons" else self.flags)[code] = (led.sample(rows, take), int(rows.size))
         q = np.flatnonzero(led.coded("split") == "quarantine")
         self.quarantine = (led.sample(q, QUARANTINE_THUMBS), int(q.size))
         self.groups = self._groups()
@@ -621,12 +627,3 @@ def _short_value(v: Any) -> str:
     s = str(v) if not isinstance(v, str) else f'"{v}"'
     return cards.short(s, 80)
 
-
-def _thresholds(checks: list, code: str) -> list[float]:
-    """Distinct thresholds of the checks with this code (at most 3)."""
-    found: set[float] = set()
-    for cl in checks:
-        for c in cl or ():
-            if c["code"] == code and c["threshold"] is not None:
-                found.add(float(c["threshold"]))
-    return sorted(found)[:3]
