@@ -200,7 +200,8 @@ def build_parser() -> argparse.ArgumentParser:
                        description="Print every check of one sample: its value, threshold and verdict, and its "
                                    "near-duplicate group.")
     e.add_argument("out", help="output directory of a finished run")
-    e.add_argument("sample", help="sample_id, or source path (relative to the input root)")
+    e.add_argument("sample", help="sample_id (any case, or a unique prefix of 4+ characters), the manifest's own "
+                                  "id, or the source path (as recorded, ./-relative, or absolute under the input root)")
     e.add_argument("--json", action="store_true", help="print JSON")
     e.set_defaults(func=_cmd_explain)
 

@@ -181,9 +181,9 @@ def query(out_dir: str | Path, *, reason: str | None = None, flag: str | None = 
         t = pf.read(columns=filters) if filters else None
         mask = np.ones(total, bool)
         if reason is not None:
-            mask &= _list_has(t.column("reasons"), reason, prefix=False)
+            mask &= list_has(t.column("reasons"), reason, prefix=False)
         if flag is not None:
-            mask &= _list_has(t.column("flags"), flag, prefix=":" not in flag)
+            mask &= list_has(t.column("flags"), flag, prefix=":" not in flag)
         if kept is not None:
             k = pc.fill_null(t.column("kept"), False).to_numpy(zero_copy_only=False).astype(bool)
             mask &= k if kept else ~k
@@ -195,12 +195,12 @@ def query(out_dir: str | Path, *, reason: str | None = None, flag: str | None = 
         matched = int(rows.size)
         if limit is not None:
             rows = rows[:limit]
-        return Query(_take_rows(pf, cols, rows), matched, total)
+        return Query(take_rows(pf, cols, rows), matched, total)
     except (OSError, pa.ArrowException) as e:
         raise InputError(f"the ledger {path} cannot be read ({type(e).__name__}); re-run `curate run`") from e
 
 
-def _take_rows(pf: pq.ParquetFile, cols: list[str], rows: np.ndarray) -> pa.Table:
+def take_rows(pf: pq.ParquetFile, cols: list[str], rows: np.ndarray) -> pa.Table:
     """The chosen columns of these rows, reading only the row groups that hold them."""
     sizes = np.array([pf.metadata.row_group(i).num_rows for i in range(pf.num_row_groups)], np.int64)
     starts = np.r_[0, np.cumsum(sizes)]
@@ -231,7 +231,7 @@ def _columns(columns: list[str] | None, names: list[str]) -> list[str]:
     return out
 
 
-def _list_has(col: pa.ChunkedArray, value: str, *, prefix: bool) -> np.ndarray:
+def list_has(col: pa.ChunkedArray, value: str, *, prefix: bool) -> np.ndarray:
     """Rows whose list holds `value` (or, with prefix, `value` or any `value:...`): Arrow kernels only."""
     mask = np.zeros(len(col), bool)
     offset = 0

@@ -21,7 +21,7 @@ import pyarrow.compute as pc
 
 from .. import workdir
 from ..errors import InputError, OutputError
-from ..ledger import _list_has, read_ledger, run_input
+from ..ledger import list_has, read_ledger, run_input, take_rows
 from . import CSS, cards, check_text, images
 from .cards import text
 
@@ -31,6 +31,7 @@ FORMATS = {".csv": "csv", ".jsonl": "jsonl"}
 LIMIT = 200  # samples per review set unless --limit says otherwise: a sitting's work (common practice)
 _NEEDED = ("sample_id", "source", "caption", "kept", "reasons", "flags", "split", "width", "height", "agreement",
            "group_id", "dup_of", "dup_signal", "dup_distance", "checks")
+_CHOOSE = ("sample_id", "kept", "reasons", "flags", "split", "group_id", "dup_distance")
 
 
 def review(run_dir: str | Path, *, reason: str | None = None, flag: str | None = None, group: bool = False,
@@ -47,9 +48,11 @@ def review(run_dir: str | Path, *, reason: str | None = None, flag: str | None =
     if limit is not None and limit < 1:
         raise InputError(f"--limit must be 1 or more, got {limit}")
     sheet = out.with_suffix(".html")
-    t = _read(run_dir)
+    pf, have = _open(run_dir)
+    # the small columns that choose the rows first; the wide ones (captions, checks) only for those rows
+    t = pf.read(columns=[c for c in _CHOOSE if c in have]).replace_schema_metadata(None)
     rows, matched, groups = _select(t, reason, flag, group, limit)
-    picked = t.take(pa.array(rows, pa.int64())).to_pylist() if rows.size else []
+    picked = take_rows(pf, [c for c in _NEEDED if c in have], rows).to_pylist() if rows.size else []
     _check_dirs(out)
     workdir.write_bytes(out, _decisions(picked, fmt).encode("utf-8"))
     if load_images is None:
@@ -62,12 +65,13 @@ def review(run_dir: str | Path, *, reason: str | None = None, flag: str | None =
     return {"decisions": str(out), "sheet": str(sheet), "rows": len(picked), "matched": matched, "format": fmt}
 
 
-def _read(run_dir: str | Path) -> pa.Table:
-    """The ledger columns a review needs (those this ledger has)."""
+def _open(run_dir: str | Path) -> tuple[Any, list[str]]:
+    """The run's ledger as a Parquet file and its column names (a clear error when there is none)."""
     import pyarrow.parquet as pq
 
-    have = read_ledger(run_dir, columns=["sample_id"]) and pq.read_schema(Path(run_dir) / "ledger.parquet").names
-    return read_ledger(run_dir, columns=[c for c in _NEEDED if c in have])
+    read_ledger(run_dir, columns=["sample_id"])  # raises InputError naming the folder when absent or broken
+    pf = pq.ParquetFile(Path(run_dir) / "ledger.parquet")
+    return pf, pf.schema_arrow.names
 
 
 def _check_dirs(out: Path) -> None:
@@ -88,9 +92,9 @@ def _select(t: pa.Table, reason: str | None, flag: str | None, group: bool,
     kept = pc.fill_null(t.column("kept"), False).to_numpy(zero_copy_only=False).astype(bool)
     mask = np.ones(n, bool)
     if reason is not None:
-        mask &= _list_has(t.column("reasons"), reason, prefix=False)
+        mask &= list_has(t.column("reasons"), reason, prefix=False)
     if flag is not None:
-        mask &= _list_has(t.column("flags"), flag, prefix=":" not in flag)
+        mask &= list_has(t.column("flags"), flag, prefix=":" not in flag)
     if reason is None and flag is None and not group:
         flagged = pc.fill_null(pc.list_value_length(t.column("flags")), 0).to_numpy(zero_copy_only=False) > 0
         quarantined = pc.fill_null(pc.equal(t.column("split"), "quarantine"), False).to_numpy(
