@@ -26,6 +26,7 @@ from pathlib import Path
 from types import SimpleNamespace
 
 import numpy as np
+import pyarrow as pa
 import pytest
 from PIL import Image
 from test_report import _chk, _ledger, _loader, _photos, _row
@@ -240,6 +241,10 @@ def _hostile_report(tmp_path: Path) -> Path:
     rows += [_row(10 + i, True, split="train", checks=[_chk("agreement", "agreement_low", 0.3 + i / 100, 0.28, ">=",
                                                             "cosine", False)]) for i in range(12)]
     led = _ledger(rows)
+    # manifest metadata columns (prefixed meta.): a licence with markup and a source URL with a javascript: scheme
+    n = led.num_rows
+    led = led.append_column("meta.licence", pa.array([STYLE_BREAK + RUNS] * n, pa.string()))
+    led = led.append_column("meta.url", pa.array([JS_URL] * n, pa.string()))
     cfg = load_config(None, sections=config_sections())
     cfg.input.path = "/data/" + STYLE_BREAK + RUNS
     plan = SimpleNamespace(stages=[SimpleNamespace(name=s) for s in ("inspect", "caption", "neardup", "risk")])
@@ -260,6 +265,7 @@ def test_report_renders_without_errors_and_hostile_text_stays_text(browser, tmp_
     text = p.js("document.body.innerText")
     for payload in (RUNS, INJECTS, STYLE_BREAK, JS_URL):
         assert payload in text or payload.replace('"', "") in text.replace('"', ""), payload  # shown as text
+    assert p.js("[...document.querySelectorAll('dt')].filter(e => e.textContent === 'licence').length") > 0
     # the pictures decoded: every thumbnail has a natural width
     assert p.js("[...document.images].filter(i => !i.complete || i.naturalWidth === 0).length") == 0
     assert p.js("document.images.length") > 6
@@ -272,7 +278,10 @@ def test_review_sheet_renders_without_errors_and_hostile_text_stays_text(browser
                  caption=cap)
             for i, (src, cap) in enumerate([("pics/photo0.jpg", RUNS), ("pics/photo1.jpg", INJECTS),
                                             (JS_URL, STYLE_BREAK), ("pics/photo3.jpg", HOSTILE[4])])]
-    run = make_run(tmp_path, rows)
+    for r in rows:
+        r["meta.url"] = JS_URL
+        r["meta.credit"] = INJECTS
+    run = make_run(tmp_path, rows, extra={"meta.url": pa.string(), "meta.credit": pa.string()})
     res = review(run, out=tmp_path / "sheet" / "decisions.csv")
     p = browser.open(Path(res["sheet"]))
     shot = p.screenshot()
@@ -282,6 +291,7 @@ def test_review_sheet_renders_without_errors_and_hostile_text_stays_text(browser
                            "injected": 0, "handlers": 0, "jsurls": 0}
     text = p.js("document.body.innerText")
     assert RUNS in text and STYLE_BREAK in text and JS_URL in text
+    assert p.js("[...document.querySelectorAll('dt')].filter(e => e.textContent === 'url').length") == 4
     assert p.js("document.querySelectorAll('figure.card').length") == 4
     assert p.js("[...document.images].filter(i => i.naturalWidth === 0).length") == 0
     p.close()

@@ -374,7 +374,16 @@ def _base_facts(row: dict) -> list[tuple[str, Any]]:
     facts: list[tuple[str, Any]] = [("size", cards.size_text(row))]
     if row.get("agreement") is not None:
         facts.append(("agreement", cards.number(row["agreement"])))
-    return facts
+    return facts + meta_facts(row)
+
+
+META_CHARS = 80  # characters of a manifest metadata value shown on a card (licence, credit, URL)
+
+
+def meta_facts(row: dict) -> list[tuple[str, Any]]:
+    """The manifest's own columns (`meta.*`: licence, credit, source URL, ...) as plain text, never links."""
+    return [(k[5:], cards.short(v, META_CHARS)) for k, v in sorted(row.items())
+            if k.startswith("meta.") and v not in (None, "")]
 
 
 def _cards_for(led: _Ledger, rows: np.ndarray, thumbs: dict, code: str, kind: str) -> str:

@@ -22,7 +22,7 @@ import pyarrow.compute as pc
 from .. import workdir
 from ..errors import InputError, OutputError
 from ..ledger import list_has, read_ledger, run_input, take_rows
-from . import CSS, cards, check_text, images
+from . import CSS, cards, check_text, images, meta_facts
 from .cards import text
 
 COLUMNS = ("sample_id", "source", "decision", "note")  # the decisions file's columns, in order
@@ -52,7 +52,8 @@ def review(run_dir: str | Path, *, reason: str | None = None, flag: str | None =
     # the small columns that choose the rows first; the wide ones (captions, checks) only for those rows
     t = pf.read(columns=[c for c in _CHOOSE if c in have]).replace_schema_metadata(None)
     rows, matched, groups = _select(t, reason, flag, group, limit)
-    picked = take_rows(pf, [c for c in _NEEDED if c in have], rows).to_pylist() if rows.size else []
+    wide = [c for c in _NEEDED if c in have] + sorted(c for c in have if c.startswith("meta."))
+    picked = take_rows(pf, wide, rows).to_pylist() if rows.size else []
     _check_dirs(out)
     workdir.write_bytes(out, _decisions(picked, fmt).encode("utf-8"))
     if load_images is None:
@@ -182,7 +183,7 @@ def _facts(r: dict) -> list[tuple[str, Any]]:
     if r.get("dup_of"):
         sig, d = r.get("dup_signal"), r.get("dup_distance")
         facts.append(("copy of", f"{r['dup_of']} ({sig}{'' if d is None else f', {cards.number(d)}'})"))
-    return facts
+    return facts + meta_facts(r)
 
 
 def _sheet(rows: list[dict], groups: list[tuple[str, int, int]], thumbs: dict, note: str, fname: str, fmt: str,
