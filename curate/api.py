@@ -87,6 +87,30 @@ def explain(out: str | Path, sample: str) -> dict:
     return _explain(out, sample, {code: spec.help for code, spec in all_checks().items()})
 
 
+def ledger(out: str | Path, *, reason: str | None = None, flag: str | None = None, kept: bool | None = None,
+           split: str | None = None, columns: list[str] | None = None, format: str | None = None,
+           limit: int | None = None) -> Any:
+    """Ledger rows matching every filter given (see curate.ledger.query): a curate.ledger.Query, or,
+    with format (table, csv or json), its text. A table shows 50 rows unless limit says otherwise."""
+    from . import ledger as _ledger
+
+    if format is not None and format not in _ledger.FORMATS:
+        raise InputError(f"unknown format {format!r}; use one of {', '.join(_ledger.FORMATS)}")
+    if limit is None and format == "table":
+        limit = _ledger.TABLE_LIMIT
+    q = _ledger.query(out, reason=reason, flag=flag, kept=kept, split=split, columns=columns, limit=limit)
+    return q if format is None else _ledger.format_query(q, format)
+
+
+def review(run_dir: str | Path, *, reason: str | None = None, flag: str | None = None, group: bool = False,
+           limit: int | None = None, out: str | Path) -> dict:
+    """Write a pre-filled decisions file (`out`: .csv or .jsonl) and its HTML contact sheet (.html)."""
+    from .report.review import LIMIT
+    from .report.review import review as _review
+
+    return _review(run_dir, reason=reason, flag=flag, group=group, limit=LIMIT if limit is None else limit, out=out)
+
+
 def status(out: str | Path) -> dict:
     """Each stage's state in an output directory: ran, reused, seconds; whether a run holds the lock."""
     from .workdir import RunLock

@@ -181,9 +181,11 @@ def write_outputs(cfg: PipelineConfig, out: Path, work: Path, plan: Plan, shards
     }
     workdir.write_json(out / "manifest.json", manifest)
     workdir.write_json(out / "summary.json", summary)
-    from .report import write_report
+    from .report import run_facts, write_report
+    from .report.images import locator_loader, shard_loader
 
-    write_report(out, ledger, summary, cfg)
+    loader = locator_loader(joined.select(["sample_id", "locator"]), cfg.input.max_file_bytes, shard_loader(out))
+    write_report(out, ledger, summary, cfg, load_images=loader, facts=run_facts(out, manifest))
     return manifest
 
 
