@@ -161,7 +161,7 @@ def write_outputs(cfg: PipelineConfig, out: Path, work: Path, plan: Plan, shards
                         "(%s); re-run to inspect them again", len(changed), CHANGED)
             result.changed_rows = sorted(changed)
     ledger = build_ledger(joined, v, lcols, assign_buckets(cfg, joined, v))
-    workdir.write_table(out / "ledger.parquet", ledger, compression=comp)
+    workdir.write_table(out / "ledger.parquet", ledger, compression=comp, row_group_size=65536)
     (out / "config.resolved.toml").write_text(
         "# The config this run used: defaults < pipeline file < --set.\n" + cfg.to_toml(), encoding="utf-8"
     )

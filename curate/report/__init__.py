@@ -460,31 +460,16 @@ def _dup_text(row: dict) -> str:
 
 
 def keeper_reason(keeper: dict, others: list[dict]) -> str:
-    """Why the keeper beat the other copies, in the order the neardup stage ranks them: no flags,
-    most pixels, highest agreement, smallest sample_id (the first of these that tells them apart)."""
+    """Why the keeper beat the other copies: the criteria of the neardup stage's keeper priority on
+    which it won (each copy's `keep_reason` in the ledger), most frequent first."""
     if not others:
         return ""
-
-    def pixels(r: dict) -> int:
-        return (r.get("width") or 0) * (r.get("height") or 0)
-
-    def agree(r: dict) -> float:
-        a = r.get("agreement")
-        return float(a) if a is not None else float("-inf")
-
-    tied = list(others)
-    if not keeper.get("flags") and any(r.get("flags") for r in tied):
-        if all(r.get("flags") for r in tied):
-            return "the only copy without a flag"
-        tied = [r for r in tied if not r.get("flags")]
-    if all(pixels(keeper) > pixels(r) for r in tied):
-        return f"most pixels ({cards.size_text(keeper)})"
-    tied = [r for r in tied if pixels(r) == pixels(keeper)]
-    if tied and all(agree(keeper) > agree(r) for r in tied):
-        return f"same size, highest agreement ({cards.number(keeper.get('agreement'))})"
-    if tied:
-        return "same size and agreement; smallest sample_id"
-    return "ranked first by the neardup stage"
+    counts: dict[str, int] = {}
+    for r in others:
+        reason = r.get("keep_reason") or "ranked first by the neardup stage"
+        counts[reason] = counts.get(reason, 0) + 1
+    ranked = sorted(counts.items(), key=lambda kv: (-kv[1], kv[0]))
+    return "won on " + ", ".join(f"{k} ({n})" if len(ranked) > 1 else k for k, n in ranked)
 
 
 def _groups(picks: _Picks, thumbs: dict, summary: dict) -> list[str]:
@@ -496,7 +481,8 @@ def _groups(picks: _Picks, thumbs: dict, summary: dict) -> list[str]:
         return out
     out.append(f'<p class="note">The {len(picks.groups)} largest groups, keeper first, then its copies by '
                "distance to it (Hamming bits of the perceptual codes, 0 for identical bytes, or embedding "
-               "cosine). The keeper's reason follows the neardup stage's ranking.</p>")
+               "cosine). The keeper won on the first criterion of the neardup stage's keeper priority "
+               "([neardup] keeper) that told the copies apart.</p>")
     for gid, size, rows in picks.groups:
         members = picks.led.rows(rows)
         keeper = next((m for m in members if m.get("sample_id") == gid), None)
