@@ -35,7 +35,7 @@ COLUMNS = [
     ("reasons", pa.list_(pa.string())), ("flags", pa.list_(pa.string())), ("width", pa.int32()),
     ("height", pa.int32()), ("agreement", pa.float32()), ("group_id", pa.string()), ("split", pa.string()),
     ("stopped_at", pa.string()), ("decoded", pa.bool_()), ("dup_of", pa.string()), ("dup_signal", pa.string()),
-    ("dup_distance", pa.float32()), ("checks", pa.list_(LEDGER_CHECK)),
+    ("dup_distance", pa.float32()), ("keep_reason", pa.string()), ("checks", pa.list_(LEDGER_CHECK)),
 ]
 
 
@@ -52,7 +52,7 @@ def _row(i, kept, *, reasons=(), flags=(), w=768, h=768, agreement=0.31, group=N
             "agreement": agreement, "group_id": group or f"s{i:03d}", "split": split if kept else None,
             "stopped_at": stopped, "decoded": True,
             "dup_of": dup[0] if dup else None, "dup_signal": dup[1] if dup else None,
-            "dup_distance": dup[2] if dup else None,
+            "dup_distance": dup[2] if dup else None, "keep_reason": dup[3] if dup and len(dup) > 3 else None,
             "checks": [_chk("inspect", "short_side_small", min(w, h), 256, ">=", "px", min(w, h) < 256)]
             + list(checks)}
 
@@ -77,7 +77,7 @@ def _mixed():
              stopped="agreement"),
         _row(5, False, reasons=["duplicate"], w=640, h=640,
              checks=[_agree(0.30), _chk("neardup", "duplicate", 4, 10, ">", "bits", True)],
-             group="s000", stopped="neardup", dup=("s000", "phash", 4.0)),
+             group="s000", stopped="neardup", dup=("s000", "phash", 4.0, "pixels")),
         _row(6, False, reasons=["caption_short"], w=2000, h=300, agreement=None, stopped="caption",
              checks=[_chk("caption", "caption_short", 3, 5, ">=", "chars", True)]),
         _row(7, True, split="quarantine", flags=["face"], checks=[_agree(0.4)]),
@@ -258,8 +258,8 @@ def test_flag_quarantine_and_group_sections(tmp_path):
     group = [c for c in page.cards if c["section"] and c["section"].startswith("group s000")]
     assert [c["sample"] for c in group] == ["s000", "s005"]  # keeper first
     assert ["distance", "4 bits (phash)"] in group[1]["facts"] and ["copy of", "s000"] in group[1]["facts"]
-    # s000 and s005 are both 768 px wide? no: s005 is 640x640, so the keeper has the most pixels
-    assert "most pixels (768\u00d7768)" in group[0]["section"]
+    # s005 (640x640) lost to s000 (768x768) on pixels, as its ledger row says
+    assert "won on pixels" in group[0]["section"]
 
 
 def test_thumbnails_are_sampled_capped_and_read_in_one_call(tmp_path):
@@ -476,13 +476,10 @@ def test_nice_ticks_are_one_two_or_five_times_a_power_of_ten():
     assert svg.log_ticks(40, 700000) == [100, 1000, 10000, 100000]
 
 
-def test_keeper_reason_follows_the_ranking():
-    k = {"width": 800, "height": 600, "agreement": 0.3, "flags": []}
-    assert keeper_reason(k, [{"width": 900, "height": 900, "agreement": 0.4, "flags": ["face"]}]) == \
-        "the only copy without a flag"
-    assert keeper_reason(k, [{"width": 640, "height": 480, "agreement": 0.4, "flags": []}]) == \
-        "most pixels (800\u00d7600)"
-    assert keeper_reason(k, [{"width": 800, "height": 600, "agreement": 0.2, "flags": []}]).startswith(
-        "same size, highest agreement")
-    assert keeper_reason(k, [{"width": 800, "height": 600, "agreement": 0.3, "flags": []}]) == \
-        "same size and agreement; smallest sample_id"
+def test_keeper_reason_follows_the_ledger():
+    # Each copy's keep_reason (written by the neardup stage) says on which criterion the keeper won.
+    k = {"width": 800, "height": 600}
+    assert keeper_reason(k, [{"keep_reason": "unflagged"}]) == "won on unflagged"
+    assert keeper_reason(k, [{"keep_reason": "pixels"}, {"keep_reason": "pixels"}, {"keep_reason": "sharpness"}]) \
+        == "won on pixels (2), sharpness (1)"
+    assert keeper_reason(k, []) == ""
