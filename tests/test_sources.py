@@ -284,7 +284,8 @@ def test_manifest_id_column(tmp_path):
     for p in paths.values():
         rows = _by_source(_list(p, id_column="id"))
         assert rows["imgs/mug.jpg"]["sample_id"] == hashlib.sha256(b"kw-1").hexdigest()[:16]
-        assert "id" not in json.loads(rows["imgs/mug.jpg"]["meta"])
+        # every column but the image and caption columns is kept as metadata, the id column too
+        assert json.loads(rows["imgs/mug.jpg"]["meta"])["id"] == "kw-1"
 
 
 def test_manifest_custom_column_names(tmp_path):
