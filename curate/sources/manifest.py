@@ -237,6 +237,8 @@ def _written(image: str) -> str:
     s = stores.scheme(image)
     if s is None:
         return normalize_name(image)
+    if not image[: len(s) + 3].lower().endswith("://"):
+        return image  # a chained URL: never followed, named as written
     head = image[: len(s) + 3]
     rest = image[len(s) + 3:]
     return head + ("/" if rest.startswith("/") else "") + normalize_name(rest).lstrip("/")

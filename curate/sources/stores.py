@@ -21,6 +21,7 @@ from typing import Any
 from ..errors import InputError
 
 _SCHEME = re.compile(r"^([A-Za-z][A-Za-z0-9+.\-]*)://")
+_CHAINED = re.compile(r"^(?:[A-Za-z][A-Za-z0-9+.\-]*::)+[A-Za-z][A-Za-z0-9+.\-]*://")
 _LOCAL = ("file", "local")
 
 # Fields that hold a modification time, in the order they are tried. Who reports which
@@ -34,13 +35,14 @@ CHECKSUM_FIELDS = ("ETag", "etag", "md5Hash", "crc32c", "checksum", "Content-MD5
 
 
 def is_url(path: str) -> bool:
-    """True for `<scheme>://...` (any scheme, `file://` too)."""
-    return bool(_SCHEME.match(path or ""))
+    """True for `<scheme>://...` (any scheme, `file://` too) and chained `<a>::<b>://...`."""
+    return bool(_SCHEME.match(path or "") or _CHAINED.match(path or ""))
 
 
 def scheme(path: str) -> str | None:
-    m = _SCHEME.match(path or "")
-    return m.group(1).lower() if m else None
+    """The scheme of a URL (the first link of a chained one); None for a plain path."""
+    m = _SCHEME.match(path or "") or _CHAINED.match(path or "")
+    return re.split(r"::|://", m.group(0))[0].lower() if m else None
 
 
 def local_path(path: str) -> str | None:
