@@ -438,3 +438,15 @@ def test_cli_runs_with_file_urls(tmp_path):
     ledger = pq.read_table(tmp_path / "out" / "ledger.parquet")
     assert sorted(ledger.column("source").to_pylist()) == list_samples(InputConfig(path=str(corpus))).column(
         "source").to_pylist()
+
+
+def test_what_counts_as_a_url_and_what_stays_inside():
+    # RFC 3986 sec. 3.1: a scheme is a letter followed by letters, digits, '+', '-' or '.'.
+    assert stores.is_url("s3://b/k") and stores.is_url("git+ssh://h/x") and stores.is_url("memory://x")
+    assert not stores.is_url("a.tar::b.jpg") and not stores.is_url("/data/s3://x") and not stores.is_url("3d://x")
+    assert stores.is_url("simplecache::s3://b/k") and stores.scheme("simplecache::s3://b/k") == "simplecache"
+    # paths on a store compare by name after '.' and '..' are resolved (POSIX pathname resolution)
+    assert stores.inside("bucket/dir", "bucket/dir/x.png") and stores.inside("bucket/dir", "bucket/dir/a/../x")
+    assert not stores.inside("bucket/dir", "bucket/dir/../x") and not stores.inside("bucket/dir", "bucket/dirx/y")
+    assert not stores.inside("bucket/dir", "bucket/dir/../../etc/passwd")
+    assert stores.inside("/", "/any/thing") and not stores.inside("/", "../x")

@@ -1113,3 +1113,20 @@ def test_a_64_bit_id_collision_between_sources_keeps_ids_unique(tmp_path, monkey
     base = real("a.png")
     assert [(r["source"], r["sample_id"], r["source_problem"]) for r in rows] == [
         ("a.png", base, None), ("m.png", real("m.png"), None), ("z.png", f"{base}-2", "source_duplicate")]
+
+
+def test_scope_realpath_matches_os_realpath(tmp_path):
+    # Reference: os.path.realpath (POSIX path resolution), on paths through linked folders and files.
+    from curate.sources.common import Scope
+
+    (tmp_path / "real/sub").mkdir(parents=True)
+    (tmp_path / "real/sub/f.png").write_bytes(b"x")
+    os.symlink(tmp_path / "real", tmp_path / "lnk")
+    os.symlink("sub/f.png", tmp_path / "real/rel.png")
+    os.symlink(tmp_path / "nowhere", tmp_path / "real/dangling.png")
+    scope = Scope(str(tmp_path), False, 1 << 20)
+    for rel in ("lnk/sub/f.png", "lnk/rel.png", "real/../lnk/sub/../rel.png", "lnk/dangling.png", "lnk/missing.png",
+                "lnk/sub/..", "lnk/sub/.", "lnk"):
+        p = str(tmp_path / rel)
+        assert scope.realpath(p) == os.path.realpath(p), rel
+        assert scope.realpath(p) == os.path.realpath(p), rel  # again, from the folder cache

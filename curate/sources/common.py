@@ -83,10 +83,33 @@ def normalize_name(name: str) -> str:
 class Scope:
     """The input root as the readers enforce it: links and paths may not leave it unless allowed."""
 
+    # Resolved folders remembered while listing (our choice: manifests name images in a few
+    # thousand folders at a time; a bounded cache keeps memory flat).
+    DIR_CACHE = 4096
+
     def __init__(self, root: str, allow_outside: bool, max_bytes: int):
         self.real = os.path.realpath(root)
         self.allow_outside = allow_outside
         self.max_bytes = max_bytes
+        self._dirs: dict[str, str] = {}
+
+    def realpath(self, path: str) -> str:
+        """os.path.realpath(path), with the folder part resolved once per folder: only the last part
+        is checked per file (lstat), and resolved in full when it is a link."""
+        head, tail = os.path.split(path)
+        if tail in ("", ".", "..") or not head:
+            return os.path.realpath(path)
+        real_head = self._dirs.get(head)
+        if real_head is None:
+            if len(self._dirs) >= self.DIR_CACHE:
+                self._dirs.clear()
+            real_head = self._dirs[head] = os.path.realpath(head)
+        joined = os.path.join(real_head, tail)
+        try:
+            linked = stat.S_ISLNK(os.lstat(joined).st_mode)
+        except (OSError, ValueError):
+            linked = False
+        return os.path.realpath(joined) if linked else joined
 
     def inside(self, real: str) -> bool:
         base = self.real.rstrip(os.sep) + os.sep
@@ -101,7 +124,7 @@ class Scope:
         locator = path
         if resolve:
             try:
-                locator = os.path.realpath(path)
+                locator = self.realpath(path)
             except (OSError, ValueError):
                 return "unreadable", None, None, ""
             if not self.allow_outside and not self.inside(locator):
@@ -215,10 +238,37 @@ def _numbered(unit: list[dict[str, Any]], base: str, start: int) -> None:
         r["source_problem"] = "source_duplicate"
 
 
+# Rows held as Python dicts before they become Arrow (our choice: a dict row costs about 1 KB,
+# an Arrow row about its bytes, so a batch is built from parts of this many rows).
+ARROW_PART = 4096
+
+
 def to_batch(rows: list[dict[str, Any]]) -> pa.RecordBatch:
     for r in rows:
         r.pop("_order", None)
     return pa.RecordBatch.from_pylist(rows, schema=SOURCE_SCHEMA)
+
+
+class _Batcher:
+    """Collects Arrow parts and hands out batches of at least `batch_rows` rows (the last one smaller)."""
+
+    def __init__(self, batch_rows: int):
+        self.batch_rows = batch_rows
+        self.parts: list[pa.RecordBatch] = []
+        self.rows = 0
+
+    def add(self, part: pa.RecordBatch) -> pa.RecordBatch | None:
+        self.parts.append(part)
+        self.rows += part.num_rows
+        return self.take() if self.rows >= self.batch_rows else None
+
+    def take(self) -> pa.RecordBatch | None:
+        if not self.rows:
+            return None
+        parts, self.parts, self.rows = self.parts, [], 0
+        if len(parts) == 1:
+            return parts[0]
+        return pa.Table.from_batches(parts, schema=SOURCE_SCHEMA).combine_chunks().to_batches()[0]
 
 
 def sorted_batches(rows: Iterable[dict[str, Any]], batch_rows: int,
@@ -234,6 +284,7 @@ def sorted_batches(rows: Iterable[dict[str, Any]], batch_rows: int,
     """
     seen = SeenIds() if seen is None else seen
     last: dict[str, int] = {}  # id -> highest suffix handed out (only ids that were ever shared)
+    out = _Batcher(batch_rows)
     units: list[list[dict[str, Any]]] = []
     count = 0
     for unit in _units(rows):
@@ -245,11 +296,16 @@ def sorted_batches(rows: Iterable[dict[str, Any]], batch_rows: int,
             last[base] = len(unit)
         units.append(unit)
         count += len(unit)
-        if count >= batch_rows:
-            yield _flush_units(units, seen, last)
+        if count >= min(batch_rows, ARROW_PART):
+            batch = out.add(_flush_units(units, seen, last))
             units, count = [], 0
+            if batch is not None:
+                yield batch
     if units:
-        yield _flush_units(units, seen, last)
+        out.add(_flush_units(units, seen, last))
+    batch = out.take()
+    if batch is not None:
+        yield batch
 
 
 def _units(rows: Iterable[dict[str, Any]]) -> Iterator[list[dict[str, Any]]]:
@@ -286,6 +342,7 @@ def marked_batches(rows: Iterable[dict[str, Any]], shared: set[int], batch_rows:
     64-bit numbers) are known beforehand: each of those inputs gets `source_duplicate` and
     `<id>-<n>`, n = 1, 2, ... in the order the rows come."""
     counter: dict[int, int] = {}
+    out = _Batcher(batch_rows)
     batch: list[dict[str, Any]] = []
     warned: set[int] = set()
     for r in rows:
@@ -301,11 +358,16 @@ def marked_batches(rows: Iterable[dict[str, Any]], shared: set[int], batch_rows:
                 r["sample_id"] = f"{r['sample_id']}-{n}"
                 r["source_problem"] = "source_duplicate"
         batch.append(r)
-        if len(batch) >= batch_rows:
-            yield to_batch(batch)
+        if len(batch) >= min(batch_rows, ARROW_PART):
+            done = out.add(to_batch(batch))
             batch = []
+            if done is not None:
+                yield done
     if batch:
-        yield to_batch(batch)
+        out.add(to_batch(batch))
+    done = out.take()
+    if done is not None:
+        yield done
 
 
 def caption_from_json(data: bytes) -> tuple[bytes | None, str | None]:

@@ -195,9 +195,12 @@ def join(base: str, name: str) -> str:
 
 
 def inside(root: str, path: str) -> bool:
-    """True when store path `path` is `root` or below it (paths compared after `.`/`..` are resolved)."""
-    root = posixpath.normpath(root) if root not in ("", "/") else root
+    """True when store path `path` is `root` or below it, compared after `.` and `..` are resolved
+    by name (object stores have no links to follow)."""
     path = posixpath.normpath(path)
+    if path == ".." or path.startswith("../"):
+        return False
     if root in ("", "/"):
-        return not path.startswith("..") and (root == "" or path.startswith("/"))
-    return path == root or path.startswith(root.rstrip("/") + "/")
+        return root == "" or path.startswith("/")
+    root = posixpath.normpath(root)
+    return path == root or path.startswith(root + "/")
