@@ -23,6 +23,10 @@ from ..errors import InputError
 _SCHEME = re.compile(r"^([A-Za-z][A-Za-z0-9+.\-]*)://")
 _CHAINED = re.compile(r"^(?:[A-Za-z][A-Za-z0-9+.\-]*::)+[A-Za-z][A-Za-z0-9+.\-]*://")
 _LOCAL = ("file", "local")
+# Bytes fetched per request when a store object is read as a stream (manifests, tar shards):
+# our choice, large enough to amortise request latency, small enough that reading one member
+# or one header fetches little (some stores default to 50 MiB).
+STREAM_BLOCK = 4 << 20
 
 # Fields that hold a modification time, in the order they are tried. Who reports which
 # (from the fsspec backends' info() output, from memory): mtime: local disk, SFTP, HDFS;
@@ -91,7 +95,8 @@ class Store:
             self.fs.invalidate_cache(path)
 
     def open(self, path: str):
-        return self.fs.open(path, "rb")
+        """A seekable binary file that fetches STREAM_BLOCK bytes per request and keeps the last block."""
+        return self.fs.open(path, "rb", block_size=STREAM_BLOCK)
 
     def cat_ranges(self, paths: list[str], limit: int) -> list[bytes | Exception]:
         """The first `limit` bytes of each path (concurrently on stores that can); failures as exceptions."""
