@@ -8,7 +8,15 @@
   store options come from fsspec's own configuration and the store library's
   usual variables (e.g. AWS_PROFILE for s3fs), never from curate.
 - Size and modification stamp come from the store's `info()` / listing entry
-  (see `stamp`): what the store reports is trusted to change when the object does.
+  (see `stamp`, TIME_FIELDS, CHECKSUM_FIELDS). Trusted: that the store's size
+  and time (or ETag/checksum) change when the object's bytes do; they only
+  decide what is re-read (fingerprints, caches), never what is safe to read.
+  The size cap is enforced on the bytes actually read (a ranged read of at most
+  the cap + 1 bytes), not on the reported size alone.
+- Paths on a store are checked by name (`inside`): object stores have no links.
+  A store that reports an entry as a link or as neither file nor directory
+  (SFTP, SMB) gets `special_file` for it; a link its server resolves silently
+  cannot be seen from here.
 """
 from __future__ import annotations
 
