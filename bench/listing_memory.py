@@ -3,7 +3,8 @@
 Two inputs per N, built in a temporary folder:
 - manifest: a CSV of N rows (image path, a ~60-character caption, one extra column); the images
   do not exist, so each row costs a failed stat and is listed as `unreadable`;
-- folder: N empty `.jpg` files with a `.txt` sidecar each, 1,000 per sub-folder.
+- folder: N empty `.jpg` files with a `.txt` sidecar each, 1,000 per sub-folder (`--per-folder`;
+  0 puts them all in one folder, whose listing is then held whole).
 
 Each listing runs in a fresh Python process that consumes the batches and drops them. Printed per
 run: rows, seconds, peak RSS, the RSS before listing (interpreter + imports), their difference
@@ -39,10 +40,10 @@ def build_manifest(path: Path, n: int) -> None:
                     f"{i % 97}\n")
 
 
-def build_folder(root: Path, n: int) -> None:
+def build_folder(root: Path, n: int, per_folder: int = 1000) -> None:
     for i in range(n):
-        d = root / f"{i // 1000:05d}"
-        if i % 1000 == 0:
+        d = root / f"{i // per_folder:05d}" if per_folder else root
+        if i % (per_folder or n) == 0:
             d.mkdir(parents=True, exist_ok=True)
         (d / f"{i:09d}.jpg").touch()
         (d / f"{i:09d}.txt").write_text(f"a glazed bowl number {i}")
@@ -124,6 +125,7 @@ def main() -> None:
     ap.add_argument("--sizes", default="10000,100000,1000000", help="manifest rows, comma separated")
     ap.add_argument("--folder-sizes", default="10000,100000", help="folder files, comma separated")
     ap.add_argument("--batch-rows", type=int, default=65536)
+    ap.add_argument("--per-folder", type=int, default=1000, help="files per sub-folder (0: all in one folder)")
     ap.add_argument("--table", action="store_true", help="also run list_samples (in-memory table) for contrast")
     ap.add_argument("--set-cost", type=int, default=1_000_000, help="entries for the set cost figure (0: skip)")
     ap.add_argument("--json", action="store_true", help="one JSON line per run")
@@ -152,7 +154,7 @@ def main() -> None:
                 build_manifest(path, n)
             else:
                 path = work / f"f{n}"
-                build_folder(path, n)
+                build_folder(path, n, a.per_folder)
             built = time.perf_counter() - t0
             apis = ["iter_samples"] + (["list_samples"] if a.table else [])
             for api in apis:
