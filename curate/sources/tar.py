@@ -31,6 +31,12 @@ row for the archive itself (source = its path, `unreadable`); when the input
 root is one .tar that yields no sample at all, that is an InputError. Only
 uncompressed `.tar` is read, streaming; nothing is ever extracted: bytes are
 read into memory.
+
+Listing holds one archive's members at a time (their rows are sorted by
+source); archives come in the order of their paths with '/' appended. On an
+object store an archive is listed by streaming it once through the store, and
+a member is read back by seeking to its header offset (`Archive`), so reading a
+shard's members fetches those members, not the archive.
 """
 from __future__ import annotations
 
