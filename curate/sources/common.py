@@ -403,7 +403,7 @@ def read_caption_file(path: str, ext: str, scope: Scope) -> tuple[bytes | None, 
     """Read a sidecar file: a link out of the root is `caption_outside_root` (unless allowed); a
     special file, a file over MAX_CAPTION_BYTES or any failure to read is `caption_unreadable`."""
     try:
-        real = os.path.realpath(path)
+        real = scope.realpath(path)
         if not scope.allow_outside and not scope.inside(real):
             return None, "caption_outside_root"
         st = os.stat(real)
