@@ -24,7 +24,7 @@ def _cmd_run(a: argparse.Namespace) -> int:
     progress = BarProgress() if (not a.quiet and sys.stderr.isatty()) else NullProgress()
     res = api.run(a.config, out=a.out, input=a.input, sets=a.set, engine=a.engine, eval_sets=a.eval_set,
                   decisions=a.decisions, progress=progress)
-    summary = json.loads((Path(a.out) / "summary.json").read_text())
+    summary = json.loads((Path(res.out_dir) / "summary.json").read_text())
     if a.json:
         print(json.dumps({"out": res.out_dir, "summary": summary, "ran": res.ran, "reused": res.reused}))
         return 0

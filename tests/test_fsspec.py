@@ -421,8 +421,6 @@ def test_a_memory_input_runs_end_to_end_in_process(tmp_path, mem):
     assert all(r["width"] for r in ledger)  # every image was read back from the store and decoded
 
 
-@pytest.mark.xfail(strict=True, reason="curate/cli.py reads the summary from Path(--out), not the local path "
-                                       "the run used (res.out_dir)")
 def test_cli_runs_with_file_urls(tmp_path):
     import sys
 
