@@ -2,5 +2,5 @@
 
 Registration order does not matter: curate.plan orders the stages from their declared columns.
 """
-from . import agreement, caption, embed, hashes, inspect, neardup, pack, risk, split  # noqa: F401
+from . import agreement, caption, concepts, embed, hashes, inspect, neardup, pack, risk, split  # noqa: F401
 from .base import REGISTRY, SECTIONS, CheckSpec, Column, ConfigView, Stage, StageContext, all_checks  # noqa: F401
