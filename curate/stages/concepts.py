@@ -4,10 +4,17 @@ A concept is a set of prompts plus neutral counter-prompts. Its score for an ima
 probability mass that a softmax over the image's cosines with all of those prompts (times the
 model's logit scale, or 1 / `temperature`) puts on the concept's own prompts: zero-shot
 classification as in the CLIP paper (Radford et al. 2021, arXiv 2103.00020, sec. 3.1.2) with
-two classes made of several prompts each. The threshold is therefore relative to the counter-
-prompts: a model that cannot tell a concept prompt from its counter-prompt scores every image
-near the chance level k / (k + m) (k prompts, m counter-prompts), and a threshold above it
-stays quiet. Flags are screening aids for human review, not verdicts on the content.
+two classes made of several prompts each. The threshold is relative to the counter-prompts, and
+must lie above the chance level k / (k + m) (k prompts, m counter-prompts).
+
+That alone does not keep a probe quiet when the model does not know the concept: unknown words
+and unfamiliar images give arbitrary cosines, and the softmax turns a small systematic gap into
+a confident score (measured: tests/test_concepts.py). So one more option joins every softmax, a
+"none of these prompts" entry whose cosine is the model's match level (`match_cosine`: by
+default the cosine at which the agreement stage counts a caption as describing its image). An
+image scores high only when a concept prompt matches it about as well as a describing caption
+would, and better than the counter-prompts. Flags are screening aids for human review, not
+verdicts on the content.
 
 Scores go to the ledger column `concepts`, a struct with one float32 field per concept (pandas:
 a dict per row; DuckDB: `concepts.watermark`); null for samples without an image embedding.
@@ -102,6 +109,10 @@ class ConceptsConfig:
     # Softmax temperature: logits = cosine / temperature. 0 = the model's own learned logit scale
     # (OpenAI CLIP: 100, the cap set in training; Radford et al. 2021, sec. 2.5).
     temperature: float = 0.0
+    # Cosine of the "none of these prompts" option in every concept's softmax: an image must match a
+    # concept prompt about this well to score high. Unset = the model's default agreement threshold
+    # (LAION-5B's 0.28 for OpenAI ViT-B/32; the demo model's calibrated value); -1 = no such option.
+    match_cosine: float | None = None
 
     def __post_init__(self) -> None:
         merged = default_probes()
@@ -113,6 +124,8 @@ class ConceptsConfig:
     def validate(self) -> None:
         if not self.temperature >= 0 or not np.isfinite(self.temperature):
             raise ValueError(f"temperature must be >= 0 (0 = the model's logit scale), got {self.temperature}")
+        if self.match_cosine is not None and not -1.0 <= self.match_cosine <= 1.0:
+            raise ValueError(f"match_cosine is a cosine and must lie in [-1, 1] (-1 = off), got {self.match_cosine}")
         for name, entry in self.probes.items():
             where = f"probes.{name}"
             if not _NAME_RE.match(name):
@@ -165,16 +178,18 @@ def probes(cfg: ConceptsConfig) -> list[Probe]:
             for name, e in cfg.probes.items() if e.get("enabled", True)]
 
 
-def concept_score(image: np.ndarray, prompt_emb: np.ndarray, counter_emb: np.ndarray, scale: float) -> np.ndarray:
-    """Per image row: the softmax mass on the prompts over [prompts, counter-prompts] of
-    scale * cosine. Rows are re-normalised (stored embeddings are float16); a zero row gives NaN."""
-    img = np.asarray(image, dtype=np.float64)
-    norms = np.linalg.norm(img, axis=1, keepdims=True)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        img = img / norms
-    logits_p = scale * img @ np.asarray(prompt_emb, dtype=np.float64).T
-    logits_c = scale * img @ np.asarray(counter_emb, dtype=np.float64).T
-    both = np.concatenate([logits_p, logits_c], axis=1)
+def concept_score(image: np.ndarray, prompt_emb: np.ndarray, counter_emb: np.ndarray, scale: float,
+                  match_cosine: float | None = None) -> np.ndarray:
+    """Per image row: the softmax mass on the prompts over [prompts, counter-prompts, none-of-these]
+    of scale * cosine, where none-of-these has cosine `match_cosine` (left out when None or <= -1).
+    Every row is re-normalised (stored embeddings are float16); a zero image row gives NaN."""
+    img, pe, ce = (_unit(a) for a in (image, prompt_emb, counter_emb))
+    logits_p = scale * img @ pe.T
+    logits_c = scale * img @ ce.T
+    parts = [logits_p, logits_c]
+    if match_cosine is not None and match_cosine > -1.0:
+        parts.append(np.full((img.shape[0], 1), scale * float(match_cosine)))
+    both = np.concatenate(parts, axis=1)
     if both.shape[0] == 0:
         return np.zeros(0, dtype=np.float64)
     top = both.max(axis=1, keepdims=True)
@@ -182,6 +197,12 @@ def concept_score(image: np.ndarray, prompt_emb: np.ndarray, counter_emb: np.nda
         num = np.exp(logits_p - top).sum(axis=1)
         den = np.exp(both - top).sum(axis=1)
         return num / den
+
+
+def _unit(a: np.ndarray) -> np.ndarray:
+    a = np.asarray(a, dtype=np.float64)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return a / np.linalg.norm(a, axis=1, keepdims=True)
 
 
 def _model(ctx: StageContext) -> Any:
@@ -203,6 +224,24 @@ def prompt_embeddings(lm: Any, texts: tuple[str, ...], batch_size: int) -> np.nd
         _PROMPT_CACHE.clear()
         _PROMPT_CACHE[key] = lm.encode_texts(list(texts), batch_size)
     return _PROMPT_CACHE[key]
+
+
+def match_level(cfg: ConceptsConfig, view: ConfigView) -> tuple[float | None, str]:
+    """The none-of-these cosine and where it comes from; ConfigError when the model has no default."""
+    from ..errors import ConfigError
+    from .agreement import default_threshold
+
+    if cfg.match_cosine is not None:
+        return (None if cfg.match_cosine <= -1.0 else float(cfg.match_cosine)), "concepts.match_cosine"
+    e = view.section("embed")
+    try:
+        value, source = default_threshold(e.model, e.pretrained)
+    except ConfigError:
+        raise ConfigError(
+            f"no default match cosine for embed.model={e.model!r} embed.pretrained={e.pretrained!r}: set "
+            "concepts.match_cosine (the cosine at which this model's prompts describe an image; -1 = none), "
+            "or concepts.enabled = false", key="concepts.match_cosine") from None
+    return float(value), "the model's agreement default: " + source
 
 
 def logit_scale(lm: Any) -> float:
@@ -237,7 +276,9 @@ def run(table: pa.Table, cfg: ConceptsConfig, ctx: StageContext) -> pa.Table:
     n = table.num_rows
     img, ok = embedding_matrix(table.column("image_emb"))
     scores = np.full((n, len(plist)), np.nan)
-    scale = 0.0
+    best = np.zeros((n, len(plist)), dtype=np.int64)  # the concept prompt closest to each image
+    best_cos = np.full((n, len(plist)), np.nan)
+    match, _ = match_level(cfg, ctx.config)
     if ok.any():
         lm = _model(ctx)
         scale = 1.0 / cfg.temperature if cfg.temperature > 0 else logit_scale(lm)
@@ -247,15 +288,19 @@ def run(table: pa.Table, cfg: ConceptsConfig, ctx: StageContext) -> pa.Table:
         for j, p in enumerate(plist):
             pe = emb[[row[t] for t in p.prompts]]
             ce = emb[[row[t] for t in p.counter_prompts]]
-            scores[ok, j] = concept_score(img[ok], pe, ce, scale)
+            scores[ok, j] = concept_score(img[ok], pe, ce, scale, match)
+            cos = img[ok] @ pe.T
+            best[ok, j] = cos.argmax(axis=1)
+            best_cos[ok, j] = cos.max(axis=1) / np.maximum(np.linalg.norm(img[ok], axis=1), 1e-12)
     valid = ok[:, None] & np.isfinite(scores)
     checks = []
     for i in range(n):
         chks = []
         for j, p in enumerate(plist):
             if valid[i, j]:
+                detail = f"closest prompt (cosine {best_cos[i, j]:.3f}): {p.prompts[best[i, j]]}"
                 chks.append(check(f"{FAMILY}:{p.name}", value=float(scores[i, j]), threshold=p.threshold, op="<",
-                                  unit="probability", detail=f"chance level {p.chance:.3g}"))
+                                  unit="probability", detail=detail))
         checks.append(chks)
     if ctx.progress is not None:
         ctx.progress.advance(n)
@@ -273,7 +318,8 @@ def run(table: pa.Table, cfg: ConceptsConfig, ctx: StageContext) -> pa.Table:
 
 
 def identity(view: ConfigView) -> dict:
-    """The softmax scale's source, for the manifest."""
+    """The concepts, the softmax scale and the match level with its source (fails early when unknown)."""
     cfg = view.section(NAME)
-    return {"temperature": cfg.temperature or "model logit scale",
-            "concepts": [p.name for p in probes(cfg)]}
+    match, source = match_level(cfg, view)
+    return {"concepts": [p.name for p in probes(cfg)], "temperature": cfg.temperature or "model logit scale",
+            "match_cosine": match, "match_cosine_source": source}
