@@ -122,7 +122,7 @@ def test_stage_records_one_check_per_concept_with_score_and_threshold():
     assert [c["code"] for c in checks[0]] == [f"concept:{p.name}" for p in plist]
     scores = out.column("concepts").to_pylist()[0]
     for c, p in zip(checks[0], plist):
-        assert c["threshold"] == pytest.approx(p.threshold) and c["op"] == "<" and c["unit"] == "probability"
+        assert c["threshold"] == pytest.approx(p.threshold) and c["op"] == "<" and c["unit"] is None
         assert c["value"] == pytest.approx(scores[p.name], abs=1e-6)
         assert c["failed"] == (c["value"] >= p.threshold)
         assert c["detail"].startswith("closest prompt (cosine ")

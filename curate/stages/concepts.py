@@ -300,7 +300,7 @@ def run(table: pa.Table, cfg: ConceptsConfig, ctx: StageContext) -> pa.Table:
             if valid[i, j]:
                 detail = f"closest prompt (cosine {best_cos[i, j]:.3f}): {p.prompts[best[i, j]]}"
                 chks.append(check(f"{FAMILY}:{p.name}", value=float(scores[i, j]), threshold=p.threshold, op="<",
-                                  unit="probability", detail=detail))
+                                  detail=detail))
         checks.append(chks)
     if ctx.progress is not None:
         ctx.progress.advance(n)
