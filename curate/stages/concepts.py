@@ -104,7 +104,8 @@ class ConceptsConfig:
     # Concept name -> {prompts, counter_prompts, threshold, enabled}. Entries merge by name over the
     # built-in list (docs/concepts.md): give only the fields you change; `enabled = false` turns one
     # off. A sample is flagged `concept:<name>` when the concept's score is >= its threshold, which
-    # must lie above the chance level k / (k + m). Built-in thresholds: common practice, see above.
+    # must lie above the chance level k / (k + m). Built-in thresholds (0.8, a clear majority; common
+    # practice) are not calibrated on real CLIP weights. Flags are screening aids for human review.
     probes: dict[str, dict[str, Any]] = field(default_factory=default_probes)
     # Softmax temperature: logits = cosine / temperature. 0 = the model's own learned logit scale
     # (OpenAI CLIP: 100, the cap set in training; Radford et al. 2021, sec. 2.5).
