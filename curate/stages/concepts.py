@@ -100,6 +100,7 @@ def default_probes() -> dict[str, dict[str, Any]]:
 
 @dataclass
 class ConceptsConfig:
+    # Runs with the embed stage (it reads its image embeddings and its model); off when [embed] is off.
     enabled: bool = True
     # Concept name -> {prompts, counter_prompts, threshold, enabled}. Entries merge by name over the
     # built-in list (docs/concepts.md): give only the fields you change; `enabled = false` turns one
@@ -269,7 +270,7 @@ CHECKS = (
 
 @stage(name=NAME, version=VERSION, config=ConceptsConfig, kind="shard", phase="model", alive_only=True,
        needs=("image_emb",), sections=("embed",), provides=columns, checks=CHECKS, parallel="inline",
-       active_if=lambda view: bool(probes(view.section(NAME))),
+       active_if=lambda view: active(view),
        identity=lambda view: identity(view))
 def run(table: pa.Table, cfg: ConceptsConfig, ctx: StageContext) -> pa.Table:
     """Score every live image against each concept's prompts and counter-prompts."""
@@ -316,6 +317,11 @@ def run(table: pa.Table, cfg: ConceptsConfig, ctx: StageContext) -> pa.Table:
     arrays.append(pa.array(checks, type=CHECKS_TYPE))
     names.append(checks_column(NAME))
     return pa.Table.from_arrays(arrays, names=names)
+
+
+def active(view: ConfigView) -> bool:
+    """The probes read the embed stage's image embeddings: they run when it runs and a concept is on."""
+    return bool(getattr(view.section("embed"), "enabled", True)) and bool(probes(view.section(NAME)))
 
 
 def identity(view: ConfigView) -> dict:
