@@ -219,25 +219,28 @@ def calibrate(model, tokenizer, n: int, procs: int) -> dict:
     }
 
 
-def demo_probe(name: str = "watermark") -> tuple[dict, float]:
-    """The demo config's concept probe (sample_corpus/curate.toml) and its temperature (0 = model scale)."""
+def demo_probe(name: str = "watermark") -> tuple[dict, float, float | None]:
+    """The demo config's concept probe (sample_corpus/curate.toml), its temperature (0 = model scale)
+    and its match cosine (None = the model's agreement default)."""
     import tomllib
 
     data = tomllib.loads((ROOT / "sample_corpus" / "curate.toml").read_text(encoding="utf-8"))
     section = data.get("concepts", {})
-    return section["probes"][name], float(section.get("temperature", 0.0))
+    return section["probes"][name], float(section.get("temperature", 0.0)), section.get("match_cosine")
 
 
 def calibrate_concept(model, tokenizer, n: int, procs: int, agreement_threshold: float) -> dict:
     """The demo watermark probe on held-out scenes, every other one watermarked: ROC AUC, the
-    score threshold maximising Youden's J, and TPR/FPR at the configured threshold. Also the
+    score threshold maximising Youden's J, and TPR/FPR at the configured threshold, with the match
+    level the concepts stage uses (by default this model's agreement threshold). Also the
     agreement of watermarked scenes with captions that do not mention the watermark."""
     import torch
     import torch.nn.functional as F
 
     from curate.stages.concepts import concept_score
 
-    probe, temperature = demo_probe()
+    probe, temperature, match = demo_probe()
+    match = agreement_threshold if match is None else float(match)
     specs, pixels = render_many(CONCEPT_SEED, n, procs, fn=render_concept_photo)
     marked = np.array([bool(s.get("watermark")) for s in specs])
     caps = [workshop.describe(spec, random.Random(CONCEPT_SEED + 7_000_000 + i)) for i, spec in enumerate(specs)]
@@ -249,7 +252,7 @@ def calibrate_concept(model, tokenizer, n: int, procs: int, agreement_threshold:
         pe = encode_text(model, tokenizer, list(probe["prompts"]))
         ce = encode_text(model, tokenizer, list(probe["counter_prompts"]))
         scale = 1.0 / temperature if temperature > 0 else float(model.logit_scale.exp())
-    score = concept_score(img.numpy(), pe.numpy(), ce.numpy(), scale)
+    score = concept_score(img.numpy(), pe.numpy(), ce.numpy(), scale, match)
     cos = (img * txt).sum(-1).numpy().astype(np.float64)
     pos, neg = score[marked], score[~marked]
     thr, tpr, fpr = youden_threshold(pos, neg)
@@ -267,6 +270,7 @@ def calibrate_concept(model, tokenizer, n: int, procs: int, agreement_threshold:
         "score_median_watermarked": round(float(np.median(pos)), 4),
         "score_median_clean": round(float(np.median(neg)), 4),
         "logit_scale": round(scale, 3),
+        "match_cosine": match,
         "agreement_median_watermarked": round(float(np.median(cos[marked])), 4),
         "agreement_median_clean": round(float(np.median(cos[~marked])), 4),
         "agreement_watermarked_below_threshold": round(float(np.mean(cos[marked] < agreement_threshold)), 4),
@@ -274,7 +278,8 @@ def calibrate_concept(model, tokenizer, n: int, procs: int, agreement_threshold:
             f"{n} held-out scenes rendered by sample_corpus/workshop.py with seeds {CONCEPT_SEED}.."
             f"{CONCEPT_SEED + n - 1}, every odd seed stamped with workshop.watermark, as 400-800 px JPEGs "
             "decoded by the embed stage; score = the concepts stage's softmax mass on the watermark "
-            "prompts of sample_corpus/curate.toml against its counter-prompts; agreement = cosine with a "
+            "prompts of sample_corpus/curate.toml against its counter-prompts and the match level; "
+            "agreement = cosine with a "
             "caption of workshop.describe(spec), which never mentions the watermark"
         ),
     }
