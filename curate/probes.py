@@ -48,6 +48,9 @@ C_GRID = tuple(float(10.0 ** e) for e in range(-2, 5))
 # alarm in ten flagged samples).
 TARGET_PRECISION = 0.9
 SEED = 0
+# A threshold counts only where it flags at least this many labelled positives: precision measured on
+# one or two flags is noise (common practice), e.g. the top score of random labels is often a positive.
+MIN_FLAGGED = 5
 # Largest labels or probe file read (a labels file of a few hundred rows is a few KB).
 MAX_FILE_BYTES = 64 << 20
 
@@ -464,21 +467,25 @@ def pick_C(x: np.ndarray, y: np.ndarray, groups: np.ndarray, seed: int = SEED) -
 
 def pick_threshold(y: np.ndarray, scores: np.ndarray, target: float) -> tuple[float, bool, dict]:
     """From scores and labels: the threshold (flag when score >= it) with the highest recall whose precision
-    reaches `target`; when none does, the one with the highest precision (then recall). It lies midway
-    between the lowest flagged score and the next lower one, which gives the same counts on these scores."""
+    reaches `target`; when none does, the one with the highest precision (then recall). Only thresholds that
+    flag at least MIN_FLAGGED positives count. It lies midway between the lowest flagged score and the next
+    lower one, which gives the same counts on these scores."""
     y = np.asarray(y, np.int64)
     order = np.argsort(-np.asarray(scores, np.float64), kind="stable")
     s, yy = np.asarray(scores, np.float64)[order], y[order]
     pos = int(yy.sum())
+    if pos == 0 or len(s) == 0:
+        raise ValueError("pick_threshold needs at least one positive label")
     # Candidate cuts: flag the first i + 1 scores, only where the next score is lower (ties stay together).
     last = np.r_[s[1:] < s[:-1], True]
     tp = np.cumsum(yy)[last]
     flagged = (np.arange(len(s)) + 1)[last]
     prec = tp / flagged
-    rec = tp / pos if pos else np.zeros(len(tp))
-    ok = (prec >= target) & (tp > 0)
+    rec = tp / pos
+    enough = tp >= max(1, min(MIN_FLAGGED, pos))
+    ok = (prec >= target) & enough
     met = bool(ok.any())
-    idx = np.flatnonzero(ok if met else tp > 0)
+    idx = np.flatnonzero(ok if met else enough)
     # Highest recall reaching the target; or else highest precision, then recall.
     i = int(idx[np.lexsort((-prec[idx], -rec[idx]))[0]] if met else idx[np.lexsort((-rec[idx], -prec[idx]))[0]])
     cut = int(np.flatnonzero(last)[i])
