@@ -24,7 +24,7 @@ def _cmd_run(a: argparse.Namespace) -> int:
     progress = BarProgress() if (not a.quiet and sys.stderr.isatty()) else NullProgress()
     res = api.run(a.config, out=a.out, input=a.input, sets=a.set, engine=a.engine, eval_sets=a.eval_set,
                   decisions=a.decisions, progress=progress)
-    summary = json.loads((Path(a.out) / "summary.json").read_text())
+    summary = json.loads((Path(res.out_dir) / "summary.json").read_text())
     if a.json:
         print(json.dumps({"out": res.out_dir, "summary": summary, "ran": res.ran, "reused": res.reused}))
         return 0
@@ -100,6 +100,58 @@ def _short(v: Any, n: int) -> str:
     return s if len(s) <= n else s[: n - 1] + "…"
 
 
+def _cmd_ledger(a: argparse.Namespace) -> int:
+    from . import api
+
+    sys.stdout.write(api.ledger(a.out, reason=a.reason, flag=a.flag, kept=a.kept, split=a.split, columns=a.columns,
+                                format=a.format, limit=a.limit))
+    return 0
+
+
+def _cmd_review(a: argparse.Namespace) -> int:
+    from . import api
+
+    res = api.review(a.run_dir, reason=a.reason, flag=a.flag, group=a.group, limit=a.limit, out=a.out)
+    print(f"{res['rows']} of {res['matched']} sample(s) to review")
+    print(f"decisions: {_e(res['decisions'])}  (edit decision keep|drop and note)")
+    print(f"sheet:     {_e(res['sheet'])}")
+    return 0
+
+
+def _add_review_and_ledger(sub: Any) -> None:
+    rv = sub.add_parser("review", help="write a decisions file to fill in and a contact sheet to look at",
+                        description="Pick samples of a finished run and write a decisions file (CSV or JSON Lines "
+                                    "by --out's extension: sample_id, source, decision pre-filled with today's "
+                                    "verdict, note) and an HTML contact sheet beside it (same name, .html) with the "
+                                    "same samples in the same order. Without filters: every dropped, flagged or "
+                                    "quarantined sample. Apply the edited file with `curate run ... --decisions`.")
+    rv.add_argument("run_dir", metavar="DIR", help="output directory of a finished run")
+    rv.add_argument("--reason", metavar="R", help="samples dropped for this reason code")
+    rv.add_argument("--flag", metavar="F", help="samples with this flag (a family such as pii matches pii:*)")
+    rv.add_argument("--group", action="store_true", help="whole near-duplicate groups, largest first, keeper first")
+    rv.add_argument("--limit", type=int, metavar="N", help="at most N samples (default 200; groups are not split)")
+    rv.add_argument("--out", required=True, metavar="FILE", help="decisions file to write: .csv or .jsonl")
+    rv.set_defaults(func=_cmd_review)
+
+    lg = sub.add_parser("ledger", help="list ledger rows by reason, flag, verdict or split",
+                        description="Answer audit questions from the ledger without writing code: filters "
+                                    "combine (AND); fast on large ledgers (Arrow kernels, only the needed columns "
+                                    "are read).")
+    lg.add_argument("out", metavar="DIR", help="output directory of a finished run")
+    lg.add_argument("--reason", metavar="R", help="samples with this drop reason")
+    lg.add_argument("--flag", metavar="F", help="samples with this flag (a family such as pii matches pii:*)")
+    verdict = lg.add_mutually_exclusive_group()
+    verdict.add_argument("--kept", dest="kept", action="store_const", const=True, help="kept samples only")
+    verdict.add_argument("--dropped", dest="kept", action="store_const", const=False, help="dropped samples only")
+    lg.add_argument("--split", metavar="S", help="train, eval, quarantine, or none (dropped samples)")
+    lg.add_argument("--columns", nargs="+", metavar="COL",
+                    help="columns to show (names or a comma list; default sample_id source kept split reasons flags)")
+    lg.add_argument("--format", choices=["table", "csv", "json"], default="table",
+                    help="table (default), csv, or json (one JSON object per line)")
+    lg.add_argument("--limit", type=int, metavar="N", help="at most N rows (default: 50 for table, all otherwise)")
+    lg.set_defaults(func=_cmd_ledger)
+
+
 def _cmd_status(a: argparse.Namespace) -> int:
     from . import api
 
@@ -157,7 +209,8 @@ def build_parser() -> argparse.ArgumentParser:
                        description="Print every check of one sample: its value, threshold and verdict, and its "
                                    "near-duplicate group.")
     e.add_argument("out", help="output directory of a finished run")
-    e.add_argument("sample", help="sample_id, or source path (relative to the input root)")
+    e.add_argument("sample", help="sample_id (any case, or a unique prefix of 4+ characters), the manifest's own "
+                                  "id, or the source path (as recorded, ./-relative, or absolute under the input root)")
     e.add_argument("--json", action="store_true", help="print JSON")
     e.set_defaults(func=_cmd_explain)
 
@@ -176,6 +229,7 @@ def build_parser() -> argparse.ArgumentParser:
     i.add_argument("--force", action="store_true", help="overwrite an existing file")
     i.set_defaults(func=_cmd_init)
     _add_leakcheck(sub)
+    _add_review_and_ledger(sub)
     _add_probe(sub)
     return p
 

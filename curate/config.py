@@ -211,7 +211,8 @@ def _resolve_paths(cfg: PipelineConfig, data: dict, base: Path, skip: dict | Non
     def own(section: str, key: str) -> bool:
         return key in (data.get(section) or {}) and key not in (skip.get(section) or {})
 
-    if own("input", "path") and cfg.input.path and not Path(cfg.input.path).is_absolute():
+    path = cfg.input.path
+    if own("input", "path") and path and "://" not in path and not Path(path).is_absolute():
         cfg.input.path = str((base / cfg.input.path).resolve())
     for name in cfg.names():
         obj = cfg.section(name)
@@ -221,8 +222,10 @@ def _resolve_paths(cfg: PipelineConfig, data: dict, base: Path, skip: dict | Non
             value = getattr(obj, f.name)
 
             def fix(v: str) -> str:
+                if not v or "://" in v or Path(v).is_absolute():  # URLs and absolute paths stay as given
+                    return v
                 p = base / v
-                return str(p.resolve()) if v and not Path(v).is_absolute() and p.exists() else v
+                return str(p.resolve()) if p.exists() else v
 
             setattr(obj, f.name, [fix(v) for v in value] if isinstance(value, list) else fix(value))
 

@@ -118,65 +118,144 @@ def flags_so_far(check_columns: Sequence[pa.ChunkedArray | pa.Array], actions: A
 
 @dataclass
 class Verdict:
-    """The outcome for every sample, from every stage's checks in plan order."""
+    """The outcome for every sample, from every stage's checks in plan order (columnar)."""
 
-    kept: list[bool]
-    reasons: list[list[str]]
-    flags: list[list[str]]
-    quarantined: list[bool]
-    redacted: list[list[str]]
-    stopped_at: list[str | None]
-    records: list[list[dict]]  # every check: stage, status, action and the record's fields
+    kept: np.ndarray  # bool per row
+    quarantined: np.ndarray  # bool per row (kept, and a failed check says quarantine)
+    reasons: pa.ListArray  # drop reasons per row, in stage order, without repeats
+    flags: pa.ListArray  # codes that mark the row (flag, quarantine, redact; a reviewer's keep)
+    redacted: pa.ListArray  # codes whose finding is redacted in the output
+    stopped_at: pa.Array  # the stage of the first drop, or null
+    records: pa.ListArray  # every check: stage, status, action and the record's fields
+
+    def flags_of(self, rows: Sequence[int]) -> list[list[str]]:
+        return self.flags.take(pa.array(rows, pa.int64())).to_pylist()
+
+    def redacted_of(self, rows: Sequence[int]) -> list[list[str]]:
+        return self.redacted.take(pa.array(rows, pa.int64())).to_pylist()
 
 
-def verdict(stage_checks: Sequence[tuple[str, list]], skipped: dict[str, np.ndarray], skip_codes: dict[str, list[str]],
-            actions: Actions, n: int) -> Verdict:
-    """`stage_checks`: (stage, per-row check lists) in plan order. `skipped[stage]`: rows the stage did not
-    see because an earlier check dropped them; `skip_codes[stage]`: that stage's codes, listed as skipped."""
-    v = Verdict([True] * n, [[] for _ in range(n)], [[] for _ in range(n)], [False] * n, [[] for _ in range(n)],
-                [None] * n, [[] for _ in range(n)])
-    reviewed_keep = [any(c["failed"] and c["code"] == OVERRIDE for _, lists in stage_checks for c in lists[i] or ())
-                     for i in range(n)]
-    for stage, lists in stage_checks:
+def _lists(parents: np.ndarray, values: pa.Array, n: int) -> pa.ListArray:
+    """A list per row from (row, value) pairs already in row order."""
+    counts = np.bincount(parents, minlength=n) if len(parents) else np.zeros(n, np.int64)
+    offsets = np.concatenate([[0], np.cumsum(counts)]).astype(np.int32)
+    return pa.ListArray.from_arrays(pa.array(offsets, pa.int32()), values)
+
+
+def _first_per_row(parents: np.ndarray, keys: np.ndarray) -> np.ndarray:
+    """Positions of the first occurrence of each (row, key) pair, in their original order."""
+    if not len(parents):
+        return np.zeros(0, np.int64)
+    pair = parents.astype(np.int64) * (int(keys.max()) + 1) + keys.astype(np.int64)
+    _, first = np.unique(pair, return_index=True)
+    return np.sort(first)
+
+
+def verdict(stage_checks: Sequence[tuple[str, pa.ChunkedArray | pa.Array]], skipped: dict[str, np.ndarray],
+            skip_codes: dict[str, list[str]], actions: Actions, n: int) -> Verdict:
+    """`stage_checks`: (stage, its check column) in plan order. `skipped[stage]`: rows the stage did not see
+    because an earlier check dropped them; `skip_codes[stage]`: that stage's codes, listed as skipped."""
+    cols = [(stage, c.combine_chunks() if isinstance(c, pa.ChunkedArray) else c) for stage, c in stage_checks]
+    reviewed_keep = rows_with([c for _, c in cols], actions, "keep", n, lambda code: code == OVERRIDE)
+    first_reason = np.full(n, None, dtype=object)
+    parts: list[tuple[np.ndarray, pa.StructArray]] = []
+    for stage, col in cols:
         skip = skipped.get(stage)
-        for i in range(n):
-            if skip is not None and skip[i]:
-                first = v.reasons[i][0] if v.reasons[i] else None
-                for code in skip_codes.get(stage, ()):
-                    v.records[i].append(_skipped(stage, code, first))
-                continue
-            for c in lists[i] or ():
-                act = actions.action(c["code"])
-                if c["failed"] and act == "drop" and reviewed_keep[i] and actions.overridable(c["code"]):
-                    act = "overridden"  # a reviewer kept the sample despite this check
-                v.records[i].append({"stage": stage, **c, "status": "fail" if c["failed"] else "pass",
-                                     "action": act})
-                if c["failed"] and c["code"] == OVERRIDE and OVERRIDE not in v.flags[i]:
-                    v.flags[i].append(OVERRIDE)
-                if not c["failed"] or act in ("keep", "overridden"):
-                    continue
-                if act == "drop":
-                    reason = actions.reason(c["code"])
-                    if reason not in v.reasons[i]:
-                        v.reasons[i].append(reason)
-                    v.kept[i] = False
-                    v.stopped_at[i] = v.stopped_at[i] or stage
-                elif c["code"] not in v.flags[i]:
-                    v.flags[i].append(c["code"])
-                    if act == "quarantine":
-                        v.quarantined[i] = True
-                    elif act == "redact":
-                        v.redacted[i].append(c["code"])
-    for i in range(n):
-        if not v.kept[i]:
-            v.quarantined[i] = False
-    return v
+        if skip is not None and skip.any() and skip_codes.get(stage):
+            parts.append(_skipped_records(stage, np.flatnonzero(skip), skip_codes[stage], first_reason))
+        if len(col) == 0:
+            continue
+        flat = pc.list_flatten(col)
+        if len(flat) == 0:
+            continue
+        parents = np.asarray(pc.list_parent_indices(col).to_numpy(zero_copy_only=False), dtype=np.int64)
+        rec = _stage_records(stage, flat, parents, actions, reviewed_keep)
+        parts.append((parents, rec))
+        act = np.asarray(rec.field("action").to_numpy(zero_copy_only=False), dtype=object)
+        failed = np.asarray(rec.field("failed").to_numpy(zero_copy_only=False), dtype=bool)
+        drop = np.flatnonzero(failed & (act == "drop"))
+        codes = rec.field("code").to_numpy(zero_copy_only=False)
+        rows, pos = np.unique(parents[drop], return_index=True)
+        fresh = [k for k, r in enumerate(rows) if first_reason[r] is None]
+        for k in fresh:
+            first_reason[rows[k]] = actions.reason(codes[drop[pos[k]]])
+    if parts:
+        parents = np.concatenate([p for p, _ in parts])
+        recs = pa.concat_arrays([r for _, r in parts])
+        order = np.argsort(parents, kind="stable")  # stage order within each row
+        parents, recs = parents[order], recs.take(pa.array(order))
+    else:
+        parents, recs = np.zeros(0, np.int64), pa.array([], LEDGER_CHECK)
+    return _outcome(parents, recs, n, actions)
 
 
-def _skipped(stage: str, code: str, because: str | None) -> dict:
-    return {"stage": stage, "code": code, "detail": f"not checked: dropped earlier ({because})" if because else
-            "not checked: dropped earlier", "value": None, "threshold": None, "op": None, "unit": None,
-            "failed": False, "status": "skipped", "action": None}
+def _stage_records(stage: str, flat: pa.StructArray, parents: np.ndarray, actions: Actions,
+                   reviewed_keep: np.ndarray) -> pa.StructArray:
+    codes = flat.field("code")
+    uniq = pc.unique(codes).to_pylist()
+    act_of = pa.array([actions.action(c) for c in uniq], pa.string())
+    act = np.asarray(act_of.take(pc.index_in(codes, value_set=pa.array(uniq, pa.string()))).to_numpy(
+        zero_copy_only=False), dtype=object)
+    failed = np.asarray(pc.fill_null(flat.field("failed"), False).to_numpy(zero_copy_only=False), dtype=bool)
+    can = pa.array([c for c in uniq if actions.overridable(c)], pa.string())
+    overridable = np.asarray(pc.is_in(codes, value_set=can).to_numpy(zero_copy_only=False), dtype=bool)
+    over = failed & (act == "drop") & overridable & reviewed_keep[parents]
+    act = np.where(over, "overridden", act)  # a reviewer kept the sample despite this check
+    m = len(flat)
+    return pa.StructArray.from_arrays(
+        [pa.array(np.full(m, stage, dtype=object), pa.string()), codes,
+         pa.array(np.where(failed, "fail", "pass").astype(object), pa.string()), pa.array(act, pa.string()),
+         flat.field("detail"), flat.field("value"), flat.field("threshold"), flat.field("op"), flat.field("unit"),
+         pa.array(failed)], fields=list(LEDGER_CHECK))
+
+
+def _skipped_records(stage: str, rows: np.ndarray, codes: list[str],
+                     first_reason: np.ndarray) -> tuple[np.ndarray, pa.StructArray]:
+    r = np.repeat(rows, len(codes))
+    c = np.tile(np.asarray(codes, dtype=object), len(rows))
+    because = pa.array(first_reason[r], pa.string())
+    detail = pc.if_else(pc.is_null(because), "not checked: dropped earlier",
+                        pc.binary_join_element_wise("not checked: dropped earlier (", because, ")", ""))
+    m = len(r)
+    none_f, none_s = pa.nulls(m, pa.float64()), pa.nulls(m, pa.string())
+    return r, pa.StructArray.from_arrays(
+        [pa.array(np.full(m, stage, dtype=object), pa.string()), pa.array(c, pa.string()),
+         pa.array(np.full(m, "skipped", dtype=object), pa.string()), none_s, detail,
+         none_f, none_f, none_s, none_s, pa.array(np.zeros(m, bool))], fields=list(LEDGER_CHECK))
+
+
+def _outcome(parents: np.ndarray, recs: pa.StructArray, n: int, actions: Actions) -> Verdict:
+    act = np.asarray(recs.field("action").to_numpy(zero_copy_only=False), dtype=object)
+    failed = np.asarray(recs.field("failed").to_numpy(zero_copy_only=False), dtype=bool)
+    codes = np.asarray(recs.field("code").to_numpy(zero_copy_only=False), dtype=object)
+    stages = np.asarray(recs.field("stage").to_numpy(zero_copy_only=False), dtype=object)
+    if len(codes):
+        uniq, code_id = np.unique(codes.astype(str), return_inverse=True)
+    else:
+        uniq, code_id = np.zeros(0, dtype=str), np.zeros(0, np.int64)
+    reason_of = np.array([actions.reason(c) for c in uniq], dtype=object)
+
+    def pick(mask: np.ndarray) -> np.ndarray:
+        idx = np.flatnonzero(mask)
+        return idx[_first_per_row(parents[idx], code_id[idx])]
+
+    drop = pick(failed & (act == "drop"))
+    reasons = _lists(parents[drop], pa.array(reason_of[code_id[drop]], pa.string()), n)
+    mark = pick(failed & (np.isin(act, list(MARKING)) | (codes == OVERRIDE)))
+    flags = _lists(parents[mark], pa.array(codes[mark], pa.string()), n)
+    red = pick(failed & (act == "redact"))
+    redacted = _lists(parents[red], pa.array(codes[red], pa.string()), n)
+    kept = np.ones(n, bool)
+    kept[parents[drop]] = False
+    quarantined = np.zeros(n, bool)
+    quarantined[parents[failed & (act == "quarantine")]] = True
+    quarantined &= kept
+    stopped = np.full(n, None, dtype=object)
+    if len(drop):
+        rows, pos = np.unique(parents[drop], return_index=True)
+        stopped[rows] = stages[drop[pos]]
+    return Verdict(kept, quarantined, reasons, flags, redacted, pa.array(stopped, pa.string()),
+                   _lists(parents, recs, n))
 
 
 LEDGER_CHECK = pa.struct(

@@ -38,6 +38,22 @@ def output_path(work: Path, stage: str, shard: str | None = None) -> Path:
     return Path(work) / stage / f"{shard or 'all'}.parquet"
 
 
+class ShardCutter:
+    """The cut rule of `cut_shards`, one sample at a time (for a listing that streams)."""
+
+    def __init__(self, size: int):
+        self.size, self.length = size, 0
+
+    def push(self, sample_id: str) -> bool:
+        """Add a sample; True when the shard ends after it."""
+        self.length += 1
+        h = int.from_bytes(hashlib.sha256(sample_id.encode("utf-8", "surrogatepass")).digest()[:8], "big")
+        if (h % self.size == 0 and self.length >= max(1, self.size // 4)) or self.length >= 4 * self.size:
+            self.length = 0
+            return True
+        return False
+
+
 def cut_shards(sample_ids: Sequence[str], size: int) -> list[tuple[str, int, int]]:
     """Shards of about `size` rows, as (name, start, length), cut where the content says so.
 
@@ -48,16 +64,15 @@ def cut_shards(sample_ids: Sequence[str], size: int) -> list[tuple[str, int, int
     out: list[tuple[str, int, int]] = []
     start = 0
     n = len(sample_ids)
+    cutter = ShardCutter(size)
     for i, sid in enumerate(sample_ids):
-        length = i - start + 1
-        h = int.from_bytes(hashlib.sha256(sid.encode("utf-8", "surrogatepass")).digest()[:8], "big")
-        if (h % size == 0 and length >= max(1, size // 4)) or length >= 4 * size or i == n - 1:
-            out.append((_name(sample_ids[start]), start, length))
+        if cutter.push(sid) or i == n - 1:
+            out.append((shard_name(sample_ids[start]), start, i - start + 1))
             start = i + 1
     return out
 
 
-def _name(sample_id: str) -> str:
+def shard_name(sample_id: str) -> str:
     safe = "".join(ch if ch.isalnum() or ch in "-_" else "_" for ch in sample_id)[:48]
     return f"s{safe}"
 

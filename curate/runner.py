@@ -30,7 +30,7 @@ from .execute import StageRun, Task, execute
 from .layout import InputRef, output_path
 from .plan import SOURCE, Pass, Plan, PlannedStage, build_plan, shard_fingerprint
 from .progress import NullProgress, Progress
-from .sources import list_samples
+from .sources import iter_samples, shared_across_processes
 from .stages import all_checks
 from .writers import write_outputs
 
@@ -165,20 +165,19 @@ def _run_locked(cfg: PipelineConfig, plan: Plan, actions: decide.Actions, out: P
                 engine: Any, cleared: bool, notes: list[str]) -> RunResult:
     work = out / "work"
     t0 = time.perf_counter()
-    src = list_samples(cfg.input)
-    if src.num_rows == 0:
-        raise InputError(f"input {cfg.input.path} holds no samples (no image files, manifest rows or archive "
-                         "members); check --input")
-    cuts = layout.cut_shards(src.column("sample_id").to_pylist(), cfg.input.shard_size)
-    shards = [name for name, _, _ in cuts]
-    result = RunResult(out_dir=str(out), samples=src.num_rows, shards=len(shards), cleared_stale_lock=cleared,
+    source = _list_source(cfg, work)
+    shards = list(source.fp)
+    total = sum(n for _, n in source.offsets.values())
+    result = RunResult(out_dir=str(out), samples=total, shards=len(shards), cleared_stale_lock=cleared,
                        notes=notes)
     result.seconds["list"] = time.perf_counter() - t0
     eng = engine or make_engine(cfg)
-    state: dict[str, Any] = {"shards": len(shards), "samples": src.num_rows, "stages": {}, "finished": False}
+    state: dict[str, Any] = {"shards": len(shards), "samples": total, "stages": {}, "finished": False}
     try:
         for attempt in range(MAX_REPAIRS + 1):
-            w = _Work(work, plan, shards, _write_source(work, src, cuts), actions)
+            if attempt:
+                source = _list_source(cfg, work)  # a damaged source part is written again
+            w = _Work(work, plan, shards, source, actions)
             try:
                 for p in plan.passes:
                     _run_pass(p, w, cfg, eng, progress, result, state)
@@ -197,7 +196,7 @@ def _run_locked(cfg: PipelineConfig, plan: Plan, actions: decide.Actions, out: P
                 if attempt == MAX_REPAIRS:
                     raise StageError(f"work files keep failing their checksums ({e})", stage="outputs") from e
                 _repair(e, result, out)
-                w = _Work(work, plan, shards, _write_source(work, src, cuts), actions)
+                w = _Work(work, plan, shards, _list_source(cfg, work), actions)
                 for p in plan.passes:
                     _run_pass(p, w, cfg, eng, progress, result, state)
         result.seconds["pack"] = time.perf_counter() - t2
@@ -236,18 +235,46 @@ class _Source:
     offsets: dict[str, tuple[int, int]]  # shard -> (first row in the corpus, rows)
 
 
-def _write_source(work: Path, src: pa.Table, cuts: list[tuple[str, int, int]]) -> _Source:
-    """The source table cut into shards, with per-column content digests (a stage's fingerprint
-    covers only the source columns it reads)."""
+def _list_source(cfg: PipelineConfig, work: Path) -> _Source:
+    """List the input as it streams and write it in shards (content-defined cuts, curate.layout), each
+    with per-column content digests (a stage's fingerprint covers only the source columns it reads).
+    Memory holds one listing batch and one shard."""
     out = _Source({}, {}, {})
-    for name, start, length in cuts:
-        part = src.slice(start, length)
+    cutter = layout.ShardCutter(cfg.input.shard_size)
+    pending: list[pa.RecordBatch] = []
+    start = rows = 0
+
+    def flush() -> None:
+        nonlocal start, pending
+        part = pa.Table.from_batches(pending)
+        if part.num_rows == 0:
+            return
+        name = layout.shard_name(part.column("sample_id")[0].as_py())
         digests = workdir.column_digests(part)
         fp = workdir.fingerprint(digests)
         path = output_path(work, SOURCE, name)
         if workdir.stored_fingerprint(path) != fp:
             workdir.write_table(path, part, fp=fp)
-        out.fp[name], out.columns[name], out.offsets[name] = fp, digests, (start, length)
+        out.fp[name], out.columns[name], out.offsets[name] = fp, digests, (start, part.num_rows)
+        start += part.num_rows
+        pending = []
+
+    for batch in iter_samples(cfg.input):
+        ids = batch.column(batch.schema.get_field_index("sample_id")).to_pylist()
+        begin = 0
+        for i, sid in enumerate(ids):
+            if cutter.push(sid):
+                pending.append(batch.slice(begin, i + 1 - begin))
+                flush()
+                begin = i + 1
+        if begin < batch.num_rows:
+            pending.append(batch.slice(begin))
+        rows += batch.num_rows
+    if pending:
+        flush()
+    if rows == 0:
+        raise InputError(f"input {cfg.input.path} holds no samples (no image files, manifest rows or archive "
+                         "members); check --input")
     _remove_stale(work / SOURCE, set(out.fp))
     return out
 
@@ -343,7 +370,9 @@ def _run_shard_pass(p: Pass, w: _Work, cfg: PipelineConfig, eng: Any, progress: 
             tasks.append(Task(shard, [w.refs(shard, needs, skip=own)], todo, cfg, _workers(cfg), str(w.work), n))
     if tasks:
         progress.start("+".join(p.names), sum(t.rows for t in tasks))
-        if p.inline and hasattr(eng, "map_model_tasks"):  # a model pass on an engine with model workers
+        if not shared_across_processes(cfg.input.path):  # an in-process store: worker processes cannot see it
+            done = [execute(t, progress) for t in tasks]
+        elif p.inline and hasattr(eng, "map_model_tasks"):  # a model pass on an engine with model workers
             done = []
             for n, stats in eng.map_model_tasks(tasks, [t.rows for t in tasks]):
                 progress.advance(n)

@@ -19,6 +19,7 @@ from typing import Any
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from . import __version__, decide, layout, workdir
@@ -126,19 +127,20 @@ def meta_columns(joined: pa.Table) -> list[tuple[str, pa.Array]]:
     return out
 
 
-def run_verdict(joined: pa.Table, plan: Plan, actions: decide.Actions) -> decide.Verdict:
-    """The verdict from every stage's checks, with the stages each dropped sample skipped."""
+def run_verdict(joined: pa.Table, plan: Plan, actions: decide.Actions,
+                extra: list[tuple[str, pa.Array]] = ()) -> decide.Verdict:
+    """The verdict from every stage's checks (and `extra` check columns after them), with the stages each
+    dropped sample skipped."""
     n = joined.num_rows
     stage_checks, skipped, skip_codes, cols = [], {}, {}, []
     for ps in plan.stages:
-        name = ps.stage.checks_column
-        col = joined.column(name)
+        col = joined.column(ps.stage.checks_column)
         if ps.stage.alive_only:
             skipped[ps.name] = ~decide.alive(cols, actions, n)
             skip_codes[ps.name] = [c.code for c in ps.stage.checks]
-        stage_checks.append((ps.name, col.to_pylist()))
+        stage_checks.append((ps.name, col))
         cols.append(col)
-    return decide.verdict(stage_checks, skipped, skip_codes, actions, n)
+    return decide.verdict(stage_checks + list(extra), skipped, skip_codes, actions, n)
 
 
 def write_outputs(cfg: PipelineConfig, out: Path, work: Path, plan: Plan, shards: list[str], fps: dict,
@@ -154,10 +156,12 @@ def write_outputs(cfg: PipelineConfig, out: Path, work: Path, plan: Plan, shards
     if cfg.pack.enabled:
         shard_entries, changed = _write_shards(cfg, out, plan, joined, v, assign_buckets(cfg, joined, v))
         if changed:
-            _mark_changed(v, changed, result)
+            v = run_verdict(joined, plan, actions, [("pack", _changed_checks(changed, joined.num_rows))])
+            log.warning("%d image(s) changed on disk after they were inspected; they were left out of the shards "
+                        "(%s); re-run to inspect them again", len(changed), CHANGED)
             result.changed_rows = sorted(changed)
     ledger = build_ledger(joined, v, lcols, assign_buckets(cfg, joined, v))
-    workdir.write_table(out / "ledger.parquet", ledger, compression=comp)
+    workdir.write_table(out / "ledger.parquet", ledger, compression=comp, row_group_size=65536)
     (out / "config.resolved.toml").write_text(
         "# The config this run used: defaults < pipeline file < --set.\n" + cfg.to_toml(), encoding="utf-8"
     )
@@ -177,9 +181,11 @@ def write_outputs(cfg: PipelineConfig, out: Path, work: Path, plan: Plan, shards
     }
     workdir.write_json(out / "manifest.json", manifest)
     workdir.write_json(out / "summary.json", summary)
-    from .report import write_report
+    from .report import run_facts, write_report
+    from .report.images import locator_loader, shard_loader
 
-    write_report(out, ledger, summary, cfg)
+    loader = locator_loader(joined.select(["sample_id", "locator"]), cfg.input.max_file_bytes, shard_loader(out))
+    write_report(out, ledger, summary, cfg, load_images=loader, facts=run_facts(out, manifest))
     return manifest
 
 
@@ -206,21 +212,22 @@ def build_ledger(joined: pa.Table, v: decide.Verdict, lcols: list[Column],
     buckets = buckets or ([None] * n, [None] * n)
     names = ["sample_id", "source"]
     arrays = [joined.column("sample_id"), joined.column("source")]
-    decoded = joined.column("decoded").to_pylist() if "decoded" in joined.column_names else [False] * n
-    split = joined.column("split").to_pylist() if "split" in joined.column_names else [None] * n
-    final_split = [None if not k else "quarantine" if q else (s or "train")
-                   for k, q, s in zip(v.kept, v.quarantined, split)]
-    for c, values in zip(VERDICT, (v.kept, v.reasons, v.flags, final_split, v.stopped_at)):
+    decoded = (pc.fill_null(joined.column("decoded"), False) if "decoded" in joined.column_names
+                else pa.array(np.zeros(n, bool)))
+    split = joined.column("split") if "split" in joined.column_names else pa.nulls(n, pa.string())
+    kept = pa.array(v.kept)
+    final_split = pc.if_else(kept, pc.if_else(pa.array(v.quarantined), "quarantine",
+                                              pc.coalesce(split, pa.scalar("train"))), pa.scalar(None, pa.string()))
+    for c, values in zip(VERDICT, (kept, v.reasons, v.flags, final_split, v.stopped_at)):
         names.append(c.name)
-        arrays.append(pa.array(values, type=c.type))
-    sids = joined.column("sample_id").to_pylist()
+        arrays.append(values if values.type == c.type else values.cast(c.type))
+    sids = joined.column("sample_id")
     for c in lcols:
         if c.name in names:
             continue
         col = joined.column(c.name) if c.name in joined.column_names else pa.nulls(n, c.type)
         if c.name == "group_id":  # every decoded sample has a group: its own when nobody grouped it
-            col = pa.array([g if g is not None else (sid if d else None)
-                            for g, sid, d in zip(col.to_pylist(), sids, decoded)], pa.string())
+            col = pc.coalesce(col, pc.if_else(decoded, sids, pa.scalar(None, pa.string())))
         names.append(c.name)
         arrays.append(col)
     for c, values in zip(BUCKET, buckets):
@@ -230,21 +237,16 @@ def build_ledger(joined: pa.Table, v: decide.Verdict, lcols: list[Column],
         names.append(name)
         arrays.append(arr)
     names.append("checks")
-    arrays.append(pa.array(v.records, type=pa.list_(decide.LEDGER_CHECK)))
+    arrays.append(v.records)
     return pa.Table.from_arrays(arrays, names=names)
 
 
-def _mark_changed(v: decide.Verdict, changed: dict[int, str], result: Any) -> None:
-    """Samples whose bytes changed after inspection: dropped with their own reason."""
-    for i, why in changed.items():
-        rec = check(CHANGED, failed=True, detail=why)
-        v.records[i].append({"stage": "pack", **rec, "status": "fail", "action": "drop"})
-        v.reasons[i].append(CHANGED)
-        v.kept[i] = False
-        v.quarantined[i] = False
-        v.stopped_at[i] = v.stopped_at[i] or "pack"
-    log.warning("%d image(s) changed on disk after they were inspected; they were left out of the shards (%s); "
-                "re-run to inspect them again", len(changed), CHANGED)
+def _changed_checks(changed: dict[int, str], n: int) -> pa.Array:
+    """The shard writer's own check column: `source_changed` for samples whose bytes changed after inspection."""
+    from .checks import CHECKS_TYPE
+
+    return pa.array([[check(CHANGED, failed=True, detail=changed[i])] if i in changed else [] for i in range(n)],
+                    CHECKS_TYPE)
 
 
 def _shard_columns(plan: Plan) -> list[Column]:
@@ -282,6 +284,7 @@ def _write_shards(cfg: PipelineConfig, out: Path, plan: Plan, joined: pa.Table, 
     shas = joined.column("sha256").take(take).to_pylist()
     extra = {c: joined.column(c).take(take).to_pylist() for c in ("face_boxes", "content_box")
              if c in joined.column_names}
+    flags, redacted = v.flags_of(kept.tolist()), v.redacted_of(kept.tolist())
     by_split: dict[str, list[int]] = {}
     for j, i in enumerate(kept.tolist()):
         s = "quarantine" if v.quarantined[i] else (split[j] or "train")
@@ -306,9 +309,9 @@ def _write_shards(cfg: PipelineConfig, out: Path, plan: Plan, joined: pa.Table, 
                     continue
                 row = {c.name: data[c.name][j] for c in cols if c.name in data}
                 row.update(image=packed.data, image_format=packed.format, width=packed.width, height=packed.height,
-                           split=name, review_flags=v.flags[i])
-                if v.redacted[i] and row.get("caption"):
-                    row["caption"] = redacted_caption(row["caption"], v.redacted[i], cfg.risk)
+                           split=name, review_flags=flags[j])
+                if redacted[j] and row.get("caption"):
+                    row["caption"] = redacted_caption(row["caption"], redacted[j], cfg.risk)
                 writer.add(row)
         entries += writer.close()
     tmp.mkdir(parents=True, exist_ok=True)

@@ -157,7 +157,7 @@ def _shard_images(out: Path) -> dict[str, bytes]:
     return got
 
 
-_FAST = ["run.workers=1", "embed.enabled=false"]
+_FAST = ["run.workers=1", "embed.enabled=false", "agreement.enabled=false"]
 
 
 def test_folder_names_links_and_sizes_cannot_smuggle_bytes(tmp_path):

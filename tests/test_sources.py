@@ -284,7 +284,8 @@ def test_manifest_id_column(tmp_path):
     for p in paths.values():
         rows = _by_source(_list(p, id_column="id"))
         assert rows["imgs/mug.jpg"]["sample_id"] == hashlib.sha256(b"kw-1").hexdigest()[:16]
-        assert "id" not in json.loads(rows["imgs/mug.jpg"]["meta"])
+        # every column but the image and caption columns is kept as metadata, the id column too
+        assert json.loads(rows["imgs/mug.jpg"]["meta"])["id"] == "kw-1"
 
 
 def test_manifest_custom_column_names(tmp_path):
@@ -985,3 +986,147 @@ def test_special_files_are_never_opened(tmp_path, monkeypatch):
     assert not special & set(opened), special & set(opened)
     with pytest.raises(InputError, match="not a folder or a regular file"):
         _list(root / "cap.jsonl")
+
+
+# ---------------------------------------------------------------- streaming: order, batches, exact duplicates
+
+
+def _streamed(path, batch_rows=2, **kw) -> list[dict]:
+    from curate.sources import iter_samples
+
+    batches = list(iter_samples(InputConfig(path=str(path), **kw), batch_rows=batch_rows))
+    assert all(b.schema == SOURCE_SCHEMA and 0 < b.num_rows for b in batches)
+    return [r for b in batches for r in b.to_pylist()]
+
+
+def test_stream_order_is_source_order_where_a_plain_walk_is_not(tmp_path):
+    # ASCII: '-' (0x2d) < '.' (0x2e) < '/' (0x2f). A walk that lists a folder's entries by bare
+    # name would visit `a/` before `a-c.png`; sorted paths put `a-c.png` and `a.png` first.
+    for rel in ("a/b.png", "a-c.png", "a.png", "a/b/c.png", "a/b-d.png", "a0.png"):
+        _img(tmp_path / "c" / rel)
+    rows = _streamed(tmp_path / "c", batch_rows=2)
+    assert [r["source"] for r in rows] == ["a-c.png", "a.png", "a/b-d.png", "a/b.png", "a/b/c.png", "a0.png"]
+    assert rows == _list(tmp_path / "c").to_pylist()
+    # tar shards: members' sources are `<tar>/<key>`, so a shard sorts like a folder
+    _shard(tmp_path / "t/a.tar", [("z.png", _png_bytes()), ("b.png", _png_bytes())])
+    _shard(tmp_path / "t/a-c.tar", [("k.png", _png_bytes())])
+    _shard(tmp_path / "t/a/x.tar", [("k.png", _png_bytes())])
+    rows = _streamed(tmp_path / "t", batch_rows=1)
+    assert [r["source"] for r in rows] == ["a-c.tar/k", "a.tar/b", "a.tar/z", "a/x.tar/k"]
+
+
+_NAME = st.text(alphabet="ab-. _Z09é", min_size=1, max_size=4).filter(lambda s: s not in (".", ".."))
+
+
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(paths=st.lists(st.lists(_NAME, min_size=1, max_size=3), min_size=1, max_size=12),
+       batch=st.integers(1, 5))
+def test_stream_is_sorted_by_source_for_any_tree(paths, batch):
+    # Property (Python's sorted() on the relative paths is the reference order): however names
+    # mix characters below and above '/', the stream comes out sorted, in batches of `batch`,
+    # with the same rows as list_samples.
+    with tempfile.TemporaryDirectory() as d:
+        root = Path(d)
+        for parts in paths:
+            rel = "/".join(parts[:-1] + [parts[-1] + ".png"])
+            try:
+                (root / rel).parent.mkdir(parents=True, exist_ok=True)
+                (root / rel).write_bytes(_PNG)
+            except (FileExistsError, NotADirectoryError, IsADirectoryError):
+                continue
+        rows = _streamed(root, batch_rows=batch, format="folder")
+        sources = [r["source"] for r in rows]
+        assert sources == sorted(sources)
+        assert rows == list_samples(InputConfig(path=d, format="folder")).to_pylist()
+
+
+def test_folders_whose_names_escape_alike_are_walked_as_one(tmp_path):
+    raw = os.fsdecode(b"d\xff")  # a byte that is not UTF-8: its source spells it `d\xff`
+    (tmp_path / raw).mkdir()
+    (tmp_path / "d\\xff").mkdir()  # the same text, spelled with a backslash
+    (tmp_path / raw / "x.png").write_bytes(_png_bytes((1, 1, 1)))
+    (tmp_path / "d\\xff" / "x.png").write_bytes(_png_bytes((2, 2, 2)))
+    (tmp_path / "d\\xff" / "y.png").write_bytes(_png_bytes((3, 3, 3)))
+    rows = _streamed(tmp_path, batch_rows=1)
+    base = stable_id("d\\xff/x.png")
+    assert [(r["source"], r["sample_id"], r["source_problem"]) for r in rows] == [
+        ("d\\xff/x.png", f"{base}-1", "source_duplicate"),  # by raw name bytes: '\\' (0x5c) < 0xff
+        ("d\\xff/x.png", f"{base}-2", "source_duplicate"),
+        ("d\\xff/y.png", stable_id("d\\xff/y.png"), None),
+    ]
+
+
+def test_manifest_duplicates_far_apart_are_all_marked_in_row_order(tmp_path):
+    for n in "abc":
+        _img(tmp_path / f"{n}.png")
+    lines = ["a.png", "b.png", "c.png", "./b.png", "c.png", "c.png"]
+    (tmp_path / "m.csv").write_text("image,caption\n" + "".join(f"{p},row {i}\n" for i, p in enumerate(lines, 1)))
+    rows = _streamed(tmp_path / "m.csv", batch_rows=2)
+    b, c = stable_id("b.png"), stable_id("c.png")
+    assert [(r["caption_raw"], r["sample_id"]) for r in rows] == [
+        (b"row 1", stable_id("a.png")), (b"row 2", f"{b}-1"), (b"row 3", f"{c}-1"), (b"row 4", f"{b}-2"),
+        (b"row 5", f"{c}-2"), (b"row 6", f"{c}-3")]
+    assert [r["source_problem"] for r in rows] == [None] + ["source_duplicate"] * 5
+
+
+def test_a_malformed_manifest_fails_before_any_batch(tmp_path):
+    from curate.sources import iter_samples
+
+    _img(tmp_path / "a.png")
+    (tmp_path / "m.jsonl").write_text(json.dumps({"image": "a.png", "caption": "x"}) + "\n" + "[1, 2]\n")
+    with pytest.raises(InputError, match="line 2"):
+        iter_samples(InputConfig(path=str(tmp_path / "m.jsonl")))  # raised by the call itself
+
+
+def test_seen_ids_agree_with_a_python_set():
+    # Reference: Python's built-in set, on random 64-bit ids with repeats inside and across batches.
+    import numpy as np
+
+    from curate.sources.common import SeenIds
+
+    rng = np.random.default_rng(3)
+    pool = rng.integers(0, 2**63, 3000, dtype=np.uint64) * np.uint64(2)
+    seen = SeenIds()
+    seen.RUN_CAP = 256  # small runs: merging and capped runs both happen
+    ref: set[int] = set()
+    for size in rng.integers(1, 200, 60):
+        batch = rng.choice(pool, size)
+        want = []
+        for v in batch.tolist():
+            want.append(v in ref)
+            ref.add(v)
+        assert seen.add(batch).tolist() == want
+    assert len(seen) == len(ref) and seen.nbytes == 8 * len(ref)
+    assert all(np.all(r[:-1] < r[1:]) for r in seen.runs)
+
+
+def test_a_64_bit_id_collision_between_sources_keeps_ids_unique(tmp_path, monkeypatch):
+    # Two different sources whose ids collide (forced here; by chance about n**2 / 2**65):
+    # the later one, found by the exact seen-id set, gets the next suffix and source_duplicate.
+    import curate.sources.common as common
+
+    real = common.stable_id
+    monkeypatch.setattr(common, "stable_id", lambda key: real("a.png") if key == "z.png" else real(key))
+    for n in ("a.png", "m.png", "z.png"):
+        _img(tmp_path / n)
+    rows = _streamed(tmp_path, batch_rows=1)
+    base = real("a.png")
+    assert [(r["source"], r["sample_id"], r["source_problem"]) for r in rows] == [
+        ("a.png", base, None), ("m.png", real("m.png"), None), ("z.png", f"{base}-2", "source_duplicate")]
+
+
+def test_scope_realpath_matches_os_realpath(tmp_path):
+    # Reference: os.path.realpath (POSIX path resolution), on paths through linked folders and files.
+    from curate.sources.common import Scope
+
+    (tmp_path / "real/sub").mkdir(parents=True)
+    (tmp_path / "real/sub/f.png").write_bytes(b"x")
+    os.symlink(tmp_path / "real", tmp_path / "lnk")
+    os.symlink("sub/f.png", tmp_path / "real/rel.png")
+    os.symlink(tmp_path / "nowhere", tmp_path / "real/dangling.png")
+    scope = Scope(str(tmp_path), False, 1 << 20)
+    for rel in ("lnk/sub/f.png", "lnk/rel.png", "real/../lnk/sub/../rel.png", "lnk/dangling.png", "lnk/missing.png",
+                "lnk/sub/..", "lnk/sub/.", "lnk"):
+        p = str(tmp_path / rel)
+        assert scope.realpath(p) == os.path.realpath(p), rel
+        assert scope.realpath(p) == os.path.realpath(p), rel  # again, from the folder cache

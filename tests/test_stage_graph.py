@@ -27,16 +27,16 @@ from curate.sources import list_samples
 from curate.stages import REGISTRY, all_checks
 from curate.stages.base import unregister
 
-from conftest import ROOT, make_small_corpus, pipeline_config
+from conftest import ROOT, make_small_corpus, pipeline_config, textured
 
 DEMO = ['embed.model="demo"', 'embed.pretrained=""']
 NO_MODEL = ["embed.enabled=false", "agreement.enabled=false"]
 
 
 def _photo(seed: int, size: tuple[int, int]) -> Image.Image:
-    """A smooth random picture (a test fixture, not the demo corpus)."""
+    """A random picture with grain (a test fixture, not the demo corpus)."""
     rng = np.random.default_rng(seed)
-    return Image.fromarray(rng.integers(0, 255, (6, 8, 3)).astype(np.uint8)).resize(size, Image.Resampling.BICUBIC)
+    return textured(rng.integers(0, 255, (6, 8, 3)).astype(np.uint8), size, rng)
 
 
 def _sample(root: Path, name: str, img: Image.Image | None, caption: str | None, data: bytes | None = None) -> None:

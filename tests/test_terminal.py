@@ -84,7 +84,7 @@ def hostile_output(tmp_path_factory):
     os.symlink(base / "elsewhere", corpus / f"{TITLE}linked")  # a linked folder: a logged warning
     out = base / "out"
     proc = _cli("run", "--input", str(corpus), "--out", str(out), "--quiet",
-                "--set", "embed.enabled=false", "--set", "run.workers=1")
+                "--set", "embed.enabled=false", "--set", "agreement.enabled=false", "--set", "run.workers=1")
     assert proc.returncode == 0, proc.stderr.decode(errors="replace")[-2000:]
     _assert_clean(proc.stdout)
     _assert_clean(proc.stderr)

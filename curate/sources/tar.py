@@ -31,6 +31,12 @@ row for the archive itself (source = its path, `unreadable`); when the input
 root is one .tar that yields no sample at all, that is an InputError. Only
 uncompressed `.tar` is read, streaming; nothing is ever extracted: bytes are
 read into memory.
+
+Listing holds one archive's members at a time (their rows are sorted by
+source); archives come in the order of their paths with '/' appended. On an
+object store an archive is listed by streaming it once through the store, and
+a member is read back by seeking to its header offset (`Archive`), so reading a
+shard's members fetches those members, not the archive.
 """
 from __future__ import annotations
 
@@ -39,9 +45,10 @@ import os
 import re
 import tarfile
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, Callable, Iterator
 
 from ..errors import InputError
+from . import stores
 from .base import member_locator
 from .common import (
     CAPTION_EXTENSIONS,
@@ -51,9 +58,10 @@ from .common import (
     clean_text,
     is_image_name,
     is_tar_name,
+    local_lister,
     make_row,
     normalize_name,
-    walk,
+    sorted_walk,
 )
 
 log = logging.getLogger(__name__)
@@ -61,29 +69,60 @@ log = logging.getLogger(__name__)
 _DRIVE = re.compile(r"^[A-Za-z]:")
 
 
-def list_tar(root: str, scope: Scope) -> list[dict]:
-    """One row per image member of `root` (a .tar file) or of every .tar under it (a folder)."""
+def iter_tar(root: str, scope: Scope) -> Iterator[dict]:
+    """Rows of `root` (a local .tar file) or of every .tar under it (a folder): archives in the
+    order of their paths with '/' appended, each archive's rows sorted by source."""
     if not os.path.isdir(root):
         rel = os.path.basename(root)
-        rows, fault = _scan(rel, root, scope.max_bytes)
+        rows, fault = _scan(rel, root, lambda: open(root, "rb"), scope.max_bytes)
         if fault is not None and not rows:
             raise InputError(f"input {root}: not a readable tar archive ({fault}); give an uncompressed .tar")
-        return rows + _fault_rows(rel, root, fault, len(rows))
-    rows = []
-    for rel_dir, entries, _dirs in walk(root):
-        for e in entries:
-            if not is_tar_name(e.name):
+        yield from _sorted(rows + _fault_rows(rel, root, fault, len(rows)))
+        return
+    for group in sorted_walk(root, local_lister, slash=is_tar_name):
+        rows: list[dict] = []
+        for folder, name, linked in group:
+            if not is_tar_name(name):
                 continue
-            rel = f"{rel_dir}/{e.name}" if rel_dir else e.name
-            try:
-                linked = e.is_symlink()
-            except OSError:
-                linked = True
-            problem, _size, _mtime, path = scope.check_file(e.path, resolve=linked)
+            rel = folder.child(name)
+            full = os.path.join(folder.path, name)
+            problem, _size, _mtime, path = scope.check_file(full, resolve=linked)
             if problem in ("outside_root", "special_file"):
                 rows.append(_archive_row(rel, problem))
                 continue
-            rows.extend(list_one_tar(rel, path or e.path, scope.max_bytes))
+            rows.extend(list_one_tar(rel, path or full, scope.max_bytes))
+        yield from _sorted(rows)
+
+
+def iter_store_tar(store: stores.Store, root: str, url: str, is_dir: bool, max_bytes: int) -> Iterator[dict]:
+    """The same for a .tar object or a folder of them on a store; archives are read as streams."""
+    if not is_dir:
+        rel = stores.base_name(root)
+        rows, fault = _scan(rel, store.url(root), lambda: store.open(root), max_bytes)
+        if fault is not None and not rows:
+            raise InputError(f"input {url}: not a readable tar archive ({fault}); give an uncompressed .tar")
+        yield from _sorted(rows + _fault_rows(rel, url, fault, len(rows)))
+        return
+    from .folder import store_lister, walk_error
+
+    for group in sorted_walk(root, store_lister(store), stores.join, slash=is_tar_name, on_error=walk_error(url)):
+        rows = []
+        for folder, name, info in group:
+            if not is_tar_name(name):
+                continue
+            rel = folder.child(name)
+            path = stores.join(folder.path, name)
+            if stores.kind_of(info) != "file":
+                rows.append(_archive_row(rel, "special_file"))
+                continue
+            found, fault = _scan(rel, store.url(path), lambda p=path: store.open(p), max_bytes)
+            rows.extend(found + _fault_rows(rel, store.url(path), fault, len(found)))
+        yield from _sorted(rows)
+
+
+def _sorted(rows: list[dict]) -> list[dict]:
+    """One archive's (or one group's) rows in source order; rows with one source stay in `_order`."""
+    rows.sort(key=lambda r: (r["source"], r["_order"]))
     return rows
 
 
@@ -100,8 +139,8 @@ def member_name(name: str) -> str:
 
 
 def list_one_tar(rel: str, path: str, max_bytes: int) -> list[dict]:
-    """Rows for one archive; `rel` is its name relative to the input root."""
-    rows, fault = _scan(rel, path, max_bytes)
+    """Rows for one local archive; `rel` is its name relative to the input root."""
+    rows, fault = _scan(rel, path, lambda: open(path, "rb"), max_bytes)
     return rows + _fault_rows(rel, path, fault, len(rows))
 
 
@@ -136,12 +175,15 @@ class _Listing:
         return None, "caption_missing"
 
 
-def _scan(rel: str, path: str, max_bytes: int) -> tuple[list[dict], Exception | None]:
+def _scan(rel: str, path: str, opener: Callable[[], Any], max_bytes: int) -> tuple[list[dict], Exception | None]:
+    """The archive's image members as rows, streamed once from `opener()` (a binary file);
+    `path` is what its member locators name (a local path or a URL)."""
     listing = _Listing()
     fault: Exception | None = None
     try:
-        with open(path, "rb") as f:
-            total = os.fstat(f.fileno()).st_size
+        with opener() as f:
+            total = f.seek(0, os.SEEK_END)
+            f.seek(0)
             with tarfile.open(fileobj=f, mode="r|") as tf:
                 while True:
                     m = tf.next()
@@ -216,37 +258,56 @@ def _sample(rel: str, path: str, name: str, m: tarfile.TarInfo, caption: bytes |
     )
 
 
-def open_members(path: str) -> tuple[tarfile.TarFile, dict[int, tarfile.TarInfo]]:
-    """Open an archive for reading members by header offset."""
-    tf = tarfile.open(path, mode="r:")
-    index: dict[int, tarfile.TarInfo] = {}
-    try:
-        while True:
-            m = tf.next()
-            if m is None:
-                break
-            index[m.offset] = m
-    except tarfile.ReadError:
-        pass  # a cut-off or damaged archive: the members before the fault are still readable
-    except BaseException:
-        tf.close()
-        raise
-    return tf, index
+class Archive:
+    """An archive opened for reading members by header offset: a member is found by seeking to
+    its header, never by scanning the archive, so a remote archive is read only where asked."""
+
+    def __init__(self, path: str):
+        self.name = path
+        if stores.is_url(path) and stores.local_path(path) is None:
+            store, inner = stores.open_url(path)
+            self.file = store.open(inner)
+        else:
+            self.file = open(stores.local_path(path) or path, "rb")
+        try:
+            self.tf = tarfile.open(fileobj=self.file, mode="r:")
+        except BaseException:
+            self.file.close()
+            raise
+
+    def close(self) -> None:
+        try:
+            self.tf.close()
+        finally:
+            self.file.close()
+
+    def member(self, offset: int) -> tarfile.TarInfo | None:
+        """The member whose (first) header starts at byte `offset`; None when there is none."""
+        self.file.seek(offset)
+        try:
+            return tarfile.TarInfo.fromtarfile(self.tf)
+        except (tarfile.TarError, EOFError, ValueError):
+            return None
 
 
-def read_member(tf: tarfile.TarFile, index: dict[int, tarfile.TarInfo], offset: int, name: str,
-                max_bytes: int) -> bytes:
+def open_members(path: str) -> Archive:
+    """Open an archive (a local path or a URL) for reading members by header offset."""
+    return Archive(path)
+
+
+def read_member(archive: Archive, offset: int, name: str, max_bytes: int) -> bytes:
     """The bytes of the regular member at `offset`, whose name must be `name`; read into memory, never to disk."""
-    m = index.get(offset)
-    if m is None or clean_text(m.name)[0] != name:
-        raise KeyError(f"no member {name!r} at byte {offset} of {tf.name} (the archive changed since it was listed?)")
+    m = archive.member(offset)
+    if m is None or m.offset != offset or clean_text(m.name)[0] != name:
+        raise KeyError(f"no member {name!r} at byte {offset} of {archive.name} (the archive changed since it "
+                       "was listed?)")
     if is_unsafe_name(m.name) or not m.isfile():
-        raise ValueError(f"member {name!r} of {tf.name} is a link, device or unsafe path; not read")
+        raise ValueError(f"member {name!r} of {archive.name} is a link, device or unsafe path; not read")
     if m.size > max_bytes:
-        raise ValueError(f"member {name!r} of {tf.name}: {m.size} bytes, over the {max_bytes}-byte limit "
+        raise ValueError(f"member {name!r} of {archive.name}: {m.size} bytes, over the {max_bytes}-byte limit "
                          "(input.max_file_bytes); not read")
-    fh = tf.extractfile(m)
+    fh = archive.tf.extractfile(m)
     if fh is None:
-        raise ValueError(f"member {name!r} of {tf.name} has no data")
+        raise ValueError(f"member {name!r} of {archive.name} has no data")
     with fh:
         return fh.read()

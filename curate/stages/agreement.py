@@ -20,7 +20,7 @@ from typing import Any, Literal
 import numpy as np
 import pyarrow as pa
 
-from ..checks import CHECKS_TYPE, check
+from ..checks import CHECKS_TYPE, check, columnar
 from ..errors import ConfigError
 from .base import CheckSpec, Column, ConfigView, StageContext, checks_column, stage
 
@@ -246,19 +246,15 @@ def run(table: pa.Table, cfg: AgreementConfig, ctx: StageContext) -> pa.Table:
         log.warning("agreement: the model tells true captions from shuffled ones with ROC AUC %.3f (< %g): it "
                     "does not know this corpus, so agreement drops nothing; scored samples are flagged "
                     "agreement_unreliable", auc, cfg.min_fit_auc)
-    checks = []
-    for i in range(n):
-        if not valid[i]:
-            checks.append([])
-        elif not reliable or thr is None:
-            checks.append([fit])
-        else:
-            checks.append([fit, check("agreement_low", value=float(cos[i]), threshold=thr, op=">=", unit="cosine",
-                                      detail=detail)])
+    records = [fit]
+    if reliable and thr is not None:
+        records.append({"code": "agreement_low", "value": cos, "threshold": thr, "op": ">=", "unit": "cosine",
+                        "detail": detail, "failed": ~(cos >= thr)})
+    checks = columnar(n, valid, records)
     score = pa.array(clip_score(np.where(valid, cos, 0.0)).astype(np.float32), mask=~valid)
     if ctx.progress is not None:
         ctx.progress.advance(n)
-    return pa.Table.from_arrays([table.column("sample_id"), score, pa.array(checks, type=CHECKS_TYPE)],
+    return pa.Table.from_arrays([table.column("sample_id"), score, checks],
                                 names=["sample_id", "clip_score", checks_column(NAME)])
 
 

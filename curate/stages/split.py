@@ -232,7 +232,7 @@ def _strata(table: pa.Table, key: str) -> list[str]:
 def resolve_eval_sets(cfg: SplitConfig, config: Any) -> list[str]:
     """Absolute paths of `eval_sets`; relative ones are relative to the pipeline file."""
     base = Path(config.origin).parent if getattr(config, "origin", None) else Path.cwd()
-    return [str((base / os.path.expanduser(p)).resolve()) for p in cfg.eval_sets]
+    return [p if "://" in p else str((base / os.path.expanduser(p)).resolve()) for p in cfg.eval_sets]
 
 
 def effective_radius(cfg: SplitConfig, config: Any) -> int:
