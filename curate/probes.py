@@ -136,6 +136,18 @@ class Probe:
         return self.scores_from_features(features(image, text, self.kind))
 
 
+def new_probe(coef: np.ndarray, intercept: float, *, name: str, features: str, model: dict, threshold: float,
+              **extra: Any) -> Probe:
+    """A Probe with the sidecar fields every probe file has (`extra`: metrics, label counts, provenance)."""
+    coef = np.asarray(coef, np.float64).reshape(-1)
+    per = 2 if features == "image+text" else 1
+    meta = {"format": FORMAT, "format_version": FORMAT_VERSION, "name": name, "features": features,
+            "dim": int(coef.shape[0] // per), "n_features": int(coef.shape[0]), "threshold": float(threshold),
+            "model": {k: model.get(k) for k in ("model", "pretrained", "weights_file", "weights_sha256", "quantize")},
+            **extra}
+    return Probe(coef, float(intercept), meta)
+
+
 def sidecar_path(path: str | Path) -> Path:
     """The JSON sidecar beside a probe's weights: `teapot.safetensors` -> `teapot.json`."""
     return Path(path).with_suffix(".json")
@@ -158,6 +170,7 @@ def save_probe(probe: Probe, path: str | Path) -> tuple[Path, Path]:
     blob = save({"coef": np.ascontiguousarray(probe.coef, np.float64),
                  "intercept": np.array([probe.intercept], np.float64)}, metadata={"format": FORMAT})
     meta = dict(probe.meta)
+    meta.pop("sidecar_sha256", None)  # known only once written; load_probe adds it
     meta["weights_file"] = p.name
     meta["weights_sha256"] = _sha256(blob)
     side = sidecar_path(p)
@@ -192,6 +205,7 @@ def load_probe(path: str | Path) -> Probe:
 
     p = Path(path)
     side = sidecar_path(p)
+    blob = _read_small(p, "probe file")
     raw_meta = _read_small(side, "probe sidecar")
     try:
         meta = json.loads(raw_meta.decode("utf-8"))
@@ -202,7 +216,6 @@ def load_probe(path: str | Path) -> Probe:
     if meta.get("format_version") != FORMAT_VERSION:
         raise ModelError(f"probe {side} has format version {meta.get('format_version')!r}; this curate reads "
                          f"{FORMAT_VERSION}")
-    blob = _read_small(p, "probe weights")
     if _sha256(blob) != meta.get("weights_sha256"):
         raise ModelError(f"probe weights {p} do not match the sha256 its sidecar {side.name} records "
                          "(damaged, or from another training); train the probe again")
@@ -217,13 +230,17 @@ def load_probe(path: str | Path) -> Probe:
     for key in ("name", "threshold", "features", "model", "dim"):
         if key not in meta:
             raise ModelError(f"probe sidecar {side} lacks {key!r}")
+    if not isinstance(meta["dim"], int) or isinstance(meta["dim"], bool) or meta["dim"] < 1:
+        raise ModelError(f"probe sidecar {side}: dim must be a positive integer, got {meta['dim']!r}")
     if meta["features"] not in FEATURES or n != meta["dim"] * (2 if meta["features"] == "image+text" else 1):
         raise ModelError(f"probe sidecar {side}: features {meta['features']!r} do not fit {n} weights")
     if not (np.all(np.isfinite(coef)) and np.isfinite(icpt[0]) and isinstance(meta["threshold"], (int, float))
+            and not isinstance(meta["threshold"], bool)
             and 0.0 <= meta["threshold"] <= 1.0):
         raise ModelError(f"probe {p}: weights or threshold are not finite numbers in range")
     if not isinstance(meta["model"], dict) or not meta["model"].get("weights_sha256"):
         raise ModelError(f"probe sidecar {side}: the CLIP model's weights sha256 is missing")
+    meta["sidecar_sha256"] = _sha256(raw_meta)  # the probe's identity is both files' digests
     return Probe(np.asarray(coef, np.float64), float(icpt[0]), meta)
 
 
@@ -591,29 +608,18 @@ def train(run_dir: str | Path, *, labels: str | Path, name: str, out: str | Path
     x = features(emb.image, emb.text, kind)
     y = emb.labels
     f = fit(x, y, emb.groups, target_precision=target_precision)
-    meta = {
-        "format": FORMAT,
-        "format_version": FORMAT_VERSION,
-        "name": name,
-        "features": kind,
-        "dim": int(emb.image.shape[1]),
-        "n_features": int(x.shape[1]),
-        "model": {k: emb.model.get(k) for k in ("model", "pretrained", "weights_file", "weights_sha256", "quantize")},
-        "threshold": f.threshold,
-        "metrics": f.metrics,
-        "labels": {"positive": int(y.sum()), "negative": int(len(y) - y.sum()), "file": Path(labels).name,
-                   "sha256": _sha256(Path(labels).read_bytes())},
-        "classifier": {"kind": "logistic regression (scikit-learn, lbfgs)", "class_weight": "balanced", "C": f.C,
-                       "C_grid": list(C_GRID), "C_chosen_by": "balanced log loss, 3-fold group-aware cross-validation",
-                       "weights": f"mean of the {FOLDS} cross-validation fold models"},
-        "trained_on": str(Path(run_dir).resolve()),
-        "curate_version": __version__,
-        "scikit_learn_version": sklearn.__version__,
-    }
-    probe = Probe(np.asarray(f.coef, np.float64), f.intercept, meta)
+    probe = new_probe(
+        f.coef, f.intercept, name=name, features=kind, model=emb.model, threshold=f.threshold,
+        metrics=f.metrics,
+        labels={"positive": int(y.sum()), "negative": int(len(y) - y.sum()), "file": Path(labels).name,
+                "sha256": _sha256(Path(labels).read_bytes())},
+        classifier={"kind": "logistic regression (scikit-learn, lbfgs)", "class_weight": "balanced", "C": f.C,
+                    "C_grid": list(C_GRID), "C_chosen_by": "balanced log loss, 3-fold group-aware cross-validation",
+                    "weights": f"mean of the {FOLDS} cross-validation fold models"},
+        trained_on=str(Path(run_dir).resolve()), curate_version=__version__, scikit_learn_version=sklearn.__version__)
     path, side = save_probe(probe, out if out is not None else default_path(run_dir, name))
     return {**probe.meta, "path": str(path), "sidecar": str(side)}
 
 
-__all__ = ["FEATURES", "Fit", "Label", "Probe", "features", "fit", "load_probe", "pick_threshold", "read_labels",
-           "run_embeddings", "save_probe", "sidecar_path", "train"]
+__all__ = ["FEATURES", "Fit", "Label", "Probe", "features", "fit", "load_probe", "new_probe", "pick_threshold",
+           "read_labels", "run_embeddings", "save_probe", "sidecar_path", "train"]

@@ -84,11 +84,9 @@ def resolve_path(path: str, origin: str | None) -> Path:
     return p.resolve()
 
 
-def entry_actions(config) -> dict[str, str]:
-    """`probe:<name>` -> the action its `[probes] apply` entry asks for (a config or a view with [probes])."""
-    cfg = config.section(NAME)
-    if not getattr(cfg, "enabled", True):
-        return {}
+def entry_actions(view: ConfigView) -> dict[str, str]:
+    """`probe:<name>` -> the action its `[probes] apply` entry asks for ([decide] actions still overrides it)."""
+    cfg = view.section(NAME)
     return {code(name): entry.get("action", "flag") for name, entry in cfg.apply.items()}
 
 
@@ -114,9 +112,24 @@ def columns(view: ConfigView) -> tuple[Column, ...]:
                    "each probe's probability for the sample (null without an embedding)"),)
 
 
+def check_model(name: str, probe: probelib.Probe, run_model: dict, dim: int) -> str | None:
+    """Why a probe cannot score this run's embeddings (another embedding size or CLIP model), or None."""
+    trained = probe.model
+    if int(probe.meta["dim"]) != dim:
+        return (f"probe {name} was trained on {probe.meta['dim']}-dimensional embeddings of {trained.get('model')}, "
+                f"but this run's model {run_model['model']} gives {dim}; train the probe again on a run with "
+                "this model")
+    if trained.get("model") != run_model["model"] or trained.get("weights_sha256") != run_model["weights_sha256"]:
+        return (f"probe {name} was trained on embeddings of {trained.get('model')} (weights sha256 "
+                f"{str(trained.get('weights_sha256'))[:12]}), but this run embeds with {run_model['model']} "
+                f"(weights sha256 {run_model['weights_sha256'][:12]}); embeddings of different models are not "
+                "comparable: train the probe again on a run with this model")
+    return None
+
+
 def identity(view: ConfigView) -> dict:
-    """Each probe's file digest, threshold and features; refuses (ConfigError) a missing or damaged probe or
-    one trained on another CLIP model than [embed]'s, before any work."""
+    """Each probe's file digests, threshold and features (part of the fingerprint); refuses (ConfigError) a
+    missing or damaged probe, or one trained on another CLIP model than [embed]'s, before any work."""
     from ..models import clip as clipmod
     from .embed import embed_dim
 
@@ -132,25 +145,18 @@ def identity(view: ConfigView) -> dict:
             probe = load(path)
         except ModelError as e:
             raise ConfigError(f"probe {name}: {e}", key=key) from e
-        trained = probe.model
-        if trained.get("weights_sha256") != run_model["weights_sha256"]:
-            raise ConfigError(
-                f"probe {name} ({path.name}) was trained on CLIP embeddings of {trained.get('model')}/"
-                f"{trained.get('pretrained')} (weights sha256 {str(trained.get('weights_sha256'))[:12]}…), but this "
-                f"run embeds with {run_model['model']}/{run_model['pretrained']} (sha256 "
-                f"{run_model['weights_sha256'][:12]}…); embeddings of different models are not comparable: train "
-                "the probe again on a run with this model", key=key)
-        if probe.meta["dim"] != dim:
-            raise ConfigError(f"probe {name} expects {probe.meta['dim']}-dimensional embeddings; this model gives "
-                              f"{dim}", key=key)
-        out[name] = {"path": str(path), "weights_sha256": probe.meta["weights_sha256"], "threshold": probe.threshold,
+        why = check_model(name, probe, run_model, dim)
+        if why is not None:
+            raise ConfigError(why, key=key)
+        out[name] = {"path": str(path), "weights_sha256": probe.meta["weights_sha256"],
+                     "sidecar_sha256": probe.meta.get("sidecar_sha256"), "threshold": probe.threshold,
                      "features": probe.kind, "action": entry.get("action", "flag")}
     return {"probes": out}
 
 
 @stage(name=NAME, version=VERSION, config=ProbesConfig, kind="shard", phase="model", alive_only=True,
        sections=("embed",), needs=("image_emb", "text_emb"), provides=columns, checks=CHECKS, parallel="inline",
-       active_if=lambda view: bool(view.section(NAME).apply), identity=identity)
+       active_if=lambda view: bool(view.section(NAME).apply), identity=identity, actions=entry_actions)
 def run(table: pa.Table, cfg: ProbesConfig, ctx: StageContext) -> pa.Table:
     """Each configured probe's probability for every live sample, and a check against its threshold."""
     n = table.num_rows
