@@ -355,7 +355,14 @@ def run_embeddings(run_dir: str | Path, labels: list[Label], labels_path: str | 
     ledger = read_ledger(d, ["sample_id", "source", "group_id"])
     ids = ledger.column("sample_id").to_pylist()
     by_source = dict(zip(ledger.column("source").to_pylist(), ids))
-    group_of = dict(zip(ids, ledger.column("group_id").to_pylist()))
+    # Each group is named by its smallest sample_id, not by its keeper, so the folds (and the probe) do not
+    # change when a later run keeps another copy of a group.
+    group_of: dict[str, str] = {}
+    first: dict[str, str] = {}
+    for sid, g in zip(ids, ledger.column("group_id").to_pylist()):
+        key = g or sid
+        group_of[sid] = key
+        first[key] = min(first.get(key, sid), sid)
     known = set(ids)
 
     resolved: list[str] = []
@@ -412,7 +419,7 @@ def run_embeddings(run_dir: str | Path, labels: list[Label], labels_path: str | 
                           f"{d} (dropped before the embed stage, or unreadable by the model; `curate explain` "
                           f"says why): {_shown(missing)}", key="--labels")
     return RunEmbeddings(resolved, np.array(values, np.int64), np.stack([img[s] for s in resolved]), np.stack([txt[s] for s in resolved]),
-                         [group_of[s] or s for s in resolved], model)
+                         [first[group_of[s]] for s in resolved], model)
 
 
 # ------------------------------------------------------------------ fitting
