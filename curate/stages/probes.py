@@ -40,10 +40,11 @@ ENTRY_KEYS = ("path", "action")
 @dataclass
 class ProbesConfig:
     enabled: bool = True
-    # Probe name -> {path = "<name>.safetensors" (its JSON sidecar beside it; relative to this config file),
-    # action = "flag" | "drop" | "quarantine" | "keep"}. A sample scoring at or above the probe's trained
-    # threshold fails `probe:<name>`; the entry's action applies unless [decide] actions names the code.
-    # Empty: no probe runs. Flags are screening aids for human review.
+    # Probes from `curate probe train`, one entry each, e.g. under [probes.apply]:
+    # face = { path = "probes/face.safetensors", action = "flag" } (the .json sidecar beside it; relative
+    # to this config file; action "flag", "quarantine", "drop" or "keep"). A sample scoring at or above the
+    # probe's trained threshold fails `probe:<name>`; [decide] actions still overrides the entry's action.
+    # Empty: no probe runs (common practice: no filter without labels). Flags are screening aids for review.
     apply: dict[str, dict[str, str]] = field(default_factory=dict)
 
     def validate(self) -> None:
