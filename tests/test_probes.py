@@ -446,3 +446,35 @@ def test_probe_entries_map_to_actions_through_decide(tmp_path):
                        ('probes.apply.face={path="x.safetensors", thresh="0.2"}', "unknown key")):
         with pytest.raises(ConfigError, match=words):
             pipeline_config(bad)
+
+
+def test_the_stage_on_a_small_table(tmp_path):
+    # Exact scores against LogisticRegression.predict_proba (scikit-learn) with the probe's weights; a live
+    # sample without an embedding gets a null score and no check; an empty table gives an empty table.
+    import pyarrow as pa
+    from sklearn.linear_model import LogisticRegression
+
+    from conftest import stage_call
+
+    p = _demo_probe()
+    path, _ = probes.save_probe(p, tmp_path / "t.safetensors")
+    rng = np.random.default_rng(2)
+    vecs = rng.normal(size=(4, 128)).astype(np.float16)
+    typ = pa.list_(pa.float16(), 128)
+    col = pa.array([None if i == 2 else v.tolist() for i, v in enumerate(vecs)], typ)
+    table = pa.table({"sample_id": list("abcd"), "image_emb": col, "text_emb": col})
+    sets = (*DEMO, f'probes.apply.t={{path="{path}", action="drop"}}')
+    out = stage_call("probes", table, *sets).to_pylist()
+    ref = LogisticRegression()
+    ref.classes_, ref.coef_, ref.intercept_ = np.array([0, 1]), p.coef[None, :], np.array([p.intercept])
+    x = vecs.astype(np.float64)
+    want = ref.predict_proba(x / np.linalg.norm(x, axis=1, keepdims=True))[:, 1]
+    for i, row in enumerate(out):
+        if i == 2:
+            assert row["probes"]["t"] is None and row["probes.checks"] == []
+            continue
+        (rec,) = row["probes.checks"]
+        assert rec["code"] == "probe:t" and rec["value"] == pytest.approx(want[i], abs=1e-12)
+        assert rec["failed"] == (want[i] >= 0.5) and row["probes"]["t"] == pytest.approx(want[i], rel=1e-6)
+    assert {r["probes.checks"][0]["failed"] for r in out if r["probes.checks"]} == {True, False}
+    assert stage_call("probes", table.slice(0, 0), *sets).num_rows == 0

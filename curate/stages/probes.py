@@ -15,8 +15,6 @@ Flags are screening aids for human review: a probe knows only what its labels sh
 """
 from __future__ import annotations
 
-import functools
-import os
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -91,18 +89,10 @@ def entry_actions(view: ConfigView) -> dict[str, str]:
     return {code(name): entry.get("action", "flag") for name, entry in cfg.apply.items()}
 
 
-@functools.lru_cache(maxsize=32)
-def _load(path: str, size: int, mtime_ns: int) -> probelib.Probe:
-    return probelib.load_probe(path)
-
-
 def load(path: Path) -> probelib.Probe:
-    """A probe file, read once per process while it is unchanged (ModelError when missing or damaged)."""
-    try:
-        st = os.stat(path)
-    except OSError:
-        return probelib.load_probe(path)  # raises its own clear ModelError
-    return _load(str(path), st.st_size, st.st_mtime_ns)
+    """A probe file (ModelError when missing or damaged). Read afresh each time: a probe is a few KB, and
+    a cache keyed on file times could miss a rewrite of either file."""
+    return probelib.load_probe(path)
 
 
 def columns(view: ConfigView) -> tuple[Column, ...]:
@@ -171,7 +161,7 @@ def run(table: pa.Table, cfg: ProbesConfig, ctx: StageContext) -> pa.Table:
         scores = np.zeros(n, np.float64)
         if ok.any():
             scores[ok] = probe.scores(img[ok], txt[ok])
-        detail = f"{path.name}; [probes] action {entry.get('action', 'flag')}"
+        detail = f"{path.name} (sha256 {probe.meta['weights_sha256'][:12]})"
         for i in np.flatnonzero(ok):
             checks[i].append(check(code(name), value=float(scores[i]), threshold=probe.threshold, op="<",
                                    unit="probability", detail=detail))
