@@ -12,6 +12,7 @@ from . import (  # noqa: F401
     inspect,
     neardup,
     pack,
+    probes,
     quality,
     review,
     risk,
