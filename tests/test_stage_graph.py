@@ -79,7 +79,7 @@ def test_a_dropped_keeper_never_takes_its_group_with_it(corpus, tmp_path):
     out = tmp_path / "out"
     api.run(None, input=str(corpus), out=str(out), sets=NO_MODEL + ['decide.actions={pii="drop"}'])
     led = _ledger(out)
-    assert led["big.jpg"]["kept"] is False and led["big.jpg"]["reasons"] == ["pii:email"]
+    assert led["big.jpg"]["kept"] is False and led["big.jpg"]["reasons"] == ["risk:pii:email"]
     assert led["small.jpg"]["kept"] is True, led["small.jpg"]["reasons"]
     skipped = [c for c in led["big.jpg"]["checks"] if c["stage"] == "neardup"]
     assert [c["status"] for c in skipped] == ["skipped"] and "pii:email" in skipped[0]["detail"]
@@ -117,7 +117,7 @@ def test_a_config_that_cannot_run_is_refused_before_any_work(corpus, tmp_path, s
 def test_a_caption_audit_without_images_runs(corpus, tmp_path):
     # No image stage and no shards: the plan has nothing that needs pixels, so it runs.
     out = tmp_path / "out"
-    sets = NO_MODEL + [f"{s}.enabled=false" for s in ("inspect", "hashes", "neardup", "pack")]
+    sets = NO_MODEL + [f"{s}.enabled=false" for s in ("inspect", "hashes", "neardup", "pack", "faces", "quality", "watermark")]
     api.run(None, input=str(corpus), out=str(out), sets=sets)
     led = _ledger(out)
     assert len(led) == 15 and led["nocap.jpg"]["reasons"] == ["caption_missing"]
@@ -184,8 +184,12 @@ def through(corpus, tmp_path_factory):
     probe = probelib.new_probe(np.random.default_rng(0).normal(size=128), 0.0, name="contract", features="image",
                                model=clipmod.identity("demo", ""), threshold=0.5)
     probe_path, _ = probelib.save_probe(probe, bench.parent / "contract.safetensors")
+    # A reviewer's decision, so the review stage is in it as well.
+    decisions = bench.parent / "decisions.csv"
+    decisions.write_text("source,decision,note\na/item002.jpg,drop,out of focus\n", encoding="utf-8")
     cfg = pipeline_config(*DEMO, "agreement.threshold=0.0", f'split.eval_sets=["{bench}"]', "split.eval_fraction=0.3",
-                          f'input.path="{corpus}"', f'probes.apply.contract={{path="{probe_path}"}}')
+                          f'input.path="{corpus}"', f'probes.apply.contract={{path="{probe_path}"}}',
+                          f'review.decisions="{decisions}"')
     src = list_samples(cfg.input)
     return cfg, src, _through(cfg, src)[1]
 
