@@ -291,9 +291,10 @@ class OvTower(Tower):
             # Explicit: on CPUs with bf16 the plugin would otherwise pick bf16 for "fp32" graphs.
             "INFERENCE_PRECISION_HINT": "bf16" if precision == "bf16" else "f32",
             "PERFORMANCE_HINT": "LATENCY",
-            # 0 = never quantise activations per group at run time (batch-independent results).
-            "DYNAMIC_QUANTIZATION_GROUP_SIZE": 0,
         }
+        if "DYNAMIC_QUANTIZATION_GROUP_SIZE" in core.get_property("CPU", "SUPPORTED_PROPERTIES"):
+            # 0 = never quantise activations per group at run time (batch-independent results).
+            cfg["DYNAMIC_QUANTIZATION_GROUP_SIZE"] = 0
         t0 = time.perf_counter()
         self.compiled = core.compile_model(core.read_model(str(model_path)), "CPU", cfg)
         self.request = self.compiled.create_infer_request()
@@ -583,3 +584,28 @@ def choose(lm: Any, *, device: str, backend: str, precision: str, calibration: C
 
 def _exports(towers: dict[str, Tower]) -> dict:
     return {k: dict(path=t.name, **{m: v for m, v in t.meta.items() if m != "folder"}) for k, t in towers.items()}
+
+
+def fit_batch_size(lm: Any, default: int, *, cap: int = 1024, headroom: float = 0.7) -> int:
+    """Largest image batch that fits the GPU's free memory (a multiple of 8, <= cap).
+
+    One probe batch of `default` measures the peak activation memory per image; the batch is
+    sized to `headroom` of the free memory after that. On CPU `default` is returned unchanged.
+    """
+    import torch
+
+    tower = lm.towers["image"] if lm.towers else None
+    device = getattr(tower, "device", lm.device)
+    if not str(device).startswith("cuda") or not torch.cuda.is_available():
+        return default
+    h, w = lm.image_size
+    probe = np.zeros((default, h, w, 3), dtype=np.uint8)
+    torch.cuda.synchronize(device)
+    torch.cuda.reset_peak_memory_stats(device)
+    before = torch.cuda.memory_allocated(device)
+    lm.encode_images(probe)
+    torch.cuda.synchronize(device)
+    per_image = max(1, (torch.cuda.max_memory_allocated(device) - before) // default)
+    free, _ = torch.cuda.mem_get_info(device)
+    fit = int(free * headroom // per_image)
+    return int(max(8, min(cap, fit) // 8 * 8))

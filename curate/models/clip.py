@@ -340,9 +340,10 @@ class LoadedModel:
         from .preprocess import Normaliser
 
         tower = self._tower("image")
-        arr = batch.numpy() if hasattr(batch, "numpy") and not hasattr(batch, "__array_interface__") else batch
-        if getattr(batch, "device", None) is not None and str(batch.device) != "cpu":
-            arr = batch  # already on an accelerator: leave it there
+        arr = batch
+        on_host = str(getattr(batch, "device", "cpu")) == "cpu"  # a tensor on a GPU stays there
+        if on_host and hasattr(batch, "numpy") and not hasattr(batch, "__array_interface__"):
+            arr = batch.numpy()  # a CPU torch tensor: view it as numpy
         dtype = str(getattr(arr, "dtype", ""))
         if dtype.endswith("uint8"):
             if isinstance(tower, TorchTower) and tower.device != "cpu":
