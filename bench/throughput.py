@@ -190,7 +190,7 @@ def decode_old(data: bytes, steps: list, hw: tuple[int, int]):
     return np.asarray(img, np.uint8)
 
 
-def preprocess_figures(items, base_vit, demo, reps: int = 1) -> dict:
+def preprocess_figures(items, base_vit, demo, label: str, reps: int = 1) -> dict:
     """Decode+resize ms per image at each draft margin, normalisation ms, and agreement shifts."""
     import numpy as np
     import torch
@@ -201,7 +201,7 @@ def preprocess_figures(items, base_vit, demo, reps: int = 1) -> dict:
     data = [Path(p).read_bytes() for p, _ in items]
     caps = [c for _, c in items]
     res: dict = {"decode_resize_ms": {}, "agreement_shift": {}}
-    for name, lm in (("vit_b32_random", base_vit), ("demo", demo)):
+    for name, lm in ((label, base_vit), ("demo", demo)):
         steps, hw = lm.pil_steps(), lm.image_size
         pix = {}
         for m in MARGINS + ("old",):
@@ -211,19 +211,21 @@ def preprocess_figures(items, base_vit, demo, reps: int = 1) -> dict:
                                 else decode_for_model(d, steps, hw, rgb, margin=m) for d in data])
             ms = (time.perf_counter() - t0) / (reps * len(data)) * 1e3
             pix[m] = arr
-            if name == "vit_b32_random":
+            if name == label:
                 res["decode_resize_ms"][str(m)] = round(ms, 2)
         img0, txt = lm.encode_images(pix[0.0]), lm.encode_texts(caps, 32)
         res["agreement_shift"][name] = {str(m): round(agreement_diff(lm.encode_images(pix[m]), txt, img0, txt), 5)
                                         for m in MARGINS[1:] + ("old",)}
-    # normalisation: previous torch arithmetic vs the in-place Normaliser, per image
-    x = pix[0.0] if len(pix[0.0]) >= 16 else np.concatenate([pix[0.0]] * 16)
+        if name == label:
+            x = pix[0.0]
+    # normalisation at the ViT-B-32 input size: the previous torch arithmetic (the embed stage's
+    # encode_images before this change) vs the in-place Normaliser, per image
     mean, std = base_vit.preprocess_cfg["mean"], base_vit.preprocess_cfg["std"]
     m_t, s_t = torch.tensor(mean), torch.tensor(std)
 
     def old_norm():
         t = torch.from_numpy(x).permute(0, 3, 1, 2).float().div(255)
-        return ((t - m_t[:, None, None]) / s_t[:, None, None]).contiguous()
+        return (t - m_t[:, None, None]) / s_t[:, None, None]
 
     norm = Normaliser(mean, std, reuse=True)
     times = {"old": [], "new": []}
@@ -255,6 +257,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--model", default="ViT-B-32", choices=["ViT-B-32", "demo"],
                     help="ViT-B-32 at random init (default) or the small demo model (a quick smoke run)")
     ap.add_argument("--skip-preprocess", action="store_true", help="skip the draft / normalisation figures")
+    ap.add_argument("--only-preprocess", action="store_true", help="only the draft / normalisation figures")
     args = ap.parse_args(argv)
 
     import numpy as np
@@ -288,92 +291,94 @@ def main(argv: list[str] | None = None) -> int:
         def decode(paths):
             return np.stack([decode_for_model(Path(p).read_bytes(), steps, hw, rgb, margin=margin) for p in paths])
 
-        # Calibration from the run's own images, disjoint from the timed items.
-        cal_items = items[args.items:args.items + args.calibration]
-        cal = backends.Calibration(decode([p for p, _ in cal_items]), tuple(c for _, c in cal_items))
-        timed = items[:args.items]
-        x = Normaliser(base.preprocess_cfg["mean"], base.preprocess_cfg["std"])(decode([p for p, _ in timed]))
-        caps = [c for _, c in timed]
+        if not args.only_preprocess:
+            # Calibration from the run's own images, disjoint from the timed items.
+            cal_items = items[args.items:args.items + args.calibration]
+            cal = backends.Calibration(decode([p for p, _ in cal_items]), tuple(c for _, c in cal_items))
+            timed = items[:args.items]
+            x = Normaliser(base.preprocess_cfg["mean"], base.preprocess_cfg["std"])(decode([p for p, _ in timed]))
+            caps = [c for _, c in timed]
 
-        paths = backends.plan("cpu")
-        names = [backends.path_name(*p) for p in paths]
-        out["not_offered"] = {f"{b}-{p}": why for b in backends.BACKENDS if backends.installed(b)
-                              for p, why in backends.cpu_precisions(b).items() if why and p != "fp16"}
-        towers, exports = {}, {}
-        for b, p in paths:
-            name = backends.path_name(b, p)
-            towers[name] = {}
-            exports[name] = {}
-            for kind in ("image", "text"):
-                t0 = time.perf_counter()
-                t = backends.build_tower(base, kind, b, p, cache_dir=cache, calibration=cal, threads=threads)
-                towers[name][kind] = t
-                exports[name][kind] = {"build_s": round(time.perf_counter() - t0, 1),
-                                       "export_s": t.meta.get("export_s"), "bytes": t.meta.get("bytes"),
-                                       "reused": t.meta.get("reused"), "compile_s": t.meta.get("compile_s")}
-        # Interleaved rounds: features from the warm-up pass, then timed passes.
-        inputs = {"image": x, "text": caps}
-        measured = {n: {k: {"features": backends.run_tower(base, towers[n][k], inputs[k], args.batch), "times": []}
-                        for k in ("image", "text")} for n in names}
-        for _ in range(args.rounds):
+            paths = backends.plan("cpu")
+            names = [backends.path_name(*p) for p in paths]
+            out["not_offered"] = {f"{b}-{p}": why for b in backends.BACKENDS if backends.installed(b)
+                                  for p, why in backends.cpu_precisions(b).items() if why and p != "fp16"}
+            towers, exports = {}, {}
+            for b, p in paths:
+                name = backends.path_name(b, p)
+                towers[name] = {}
+                exports[name] = {}
+                for kind in ("image", "text"):
+                    t0 = time.perf_counter()
+                    t = backends.build_tower(base, kind, b, p, cache_dir=cache, calibration=cal, threads=threads)
+                    towers[name][kind] = t
+                    exports[name][kind] = {"build_s": round(time.perf_counter() - t0, 1),
+                                           "export_s": t.meta.get("export_s"), "bytes": t.meta.get("bytes"),
+                                           "reused": t.meta.get("reused"), "compile_s": t.meta.get("compile_s")}
+            # Interleaved rounds: features from the warm-up pass, then timed passes.
+            inputs = {"image": x, "text": caps}
+            measured = {n: {k: {"features": backends.run_tower(base, towers[n][k], inputs[k], args.batch), "times": []}
+                            for k in ("image", "text")} for n in names}
+            for _ in range(args.rounds):
+                for n in names:
+                    for k in ("image", "text"):
+                        t0 = time.perf_counter()
+                        backends.run_tower(base, towers[n][k], inputs[k], args.batch)
+                        measured[n][k]["times"].append((time.perf_counter() - t0) / len(inputs[k]))
             for n in names:
                 for k in ("image", "text"):
-                    t0 = time.perf_counter()
-                    backends.run_tower(base, towers[n][k], inputs[k], args.batch)
-                    measured[n][k]["times"].append((time.perf_counter() - t0) / len(inputs[k]))
-        for n in names:
-            for k in ("image", "text"):
-                measured[n][k]["s_per_item"] = float(np.median(measured[n][k].pop("times")))
-        choice = backends.pick(measured, "torch-fp32", tol, names)
-        ref = choice["paths"]["torch-fp32"]
-        out["backends"] = {}
-        for n in names:
-            f = choice["paths"][n]
-            out["backends"][n] = {
-                "per_s": f["per_s"], "image_per_s": f["image_per_s"], "text_per_s": f["text_per_s"],
-                "speedup": round(f["per_s"] / ref["per_s"], 2),
-                "image_speedup": round(f["image_per_s"] / ref["image_per_s"], 2),
-                "text_speedup": round(f["text_per_s"] / ref["text_per_s"], 2),
-                "max_agreement_diff": round(f["max_agreement_diff"], 6),
-                "image_max_1_minus_cos": float(f"{f['image_max_1_minus_cos']:.3g}"),
-                "text_max_1_minus_cos": float(f"{f['text_max_1_minus_cos']:.3g}"),
-                "export": exports[n],
-            }
-        out["chosen"] = {k: choice[k] for k in ("image", "text", "per_s", "speedup", "max_agreement_diff", "tolerance")}
-        out["caption_tokens_median"] = int(np.median(clip.token_lengths(base.tokenize(caps)).numpy()))
-        cache_root = Path(cache) / "curate-exports"
-        out["export_cache_bytes"] = sum(p.stat().st_size for p in cache_root.rglob("*") if p.is_file())
+                    measured[n][k]["s_per_item"] = float(np.median(measured[n][k].pop("times")))
+            choice = backends.pick(measured, "torch-fp32", tol, names)
+            ref = choice["paths"]["torch-fp32"]
+            out["backends"] = {}
+            for n in names:
+                f = choice["paths"][n]
+                out["backends"][n] = {
+                    "per_s": f["per_s"], "image_per_s": f["image_per_s"], "text_per_s": f["text_per_s"],
+                    "speedup": round(f["per_s"] / ref["per_s"], 2),
+                    "image_speedup": round(f["image_per_s"] / ref["image_per_s"], 2),
+                    "text_speedup": round(f["text_per_s"] / ref["text_per_s"], 2),
+                    "max_agreement_diff": round(f["max_agreement_diff"], 6),
+                    "image_max_1_minus_cos": float(f"{f['image_max_1_minus_cos']:.3g}"),
+                    "text_max_1_minus_cos": float(f"{f['text_max_1_minus_cos']:.3g}"),
+                    "export": exports[n],
+                }
+            out["chosen"] = {k: choice[k] for k in ("image", "text", "per_s", "speedup", "max_agreement_diff", "tolerance")}
+            out["caption_tokens_median"] = int(np.median(clip.token_lengths(base.tokenize(caps)).numpy()))
+            cache_root = Path(cache) / "curate-exports"
+            out["export_cache_bytes"] = sum(p.stat().st_size for p in cache_root.rglob("*") if p.is_file())
 
-        # Model-only vs pipeline at the chosen path (one loaded model with the picked towers).
-        lm = dataclasses.replace(base, towers={"image": towers[choice["image"]]["image"],
-                                        "text": towers[choice["text"]]["text"]}, choice=choice)
-        paths_n = [p for p, _ in items[:args.n]]
-        caps_n = [c for _, c in items[:args.n]]
-        pixels = decode(paths_n)
+            # Model-only vs pipeline at the chosen path (one loaded model with the picked towers).
+            lm = dataclasses.replace(base, towers={"image": towers[choice["image"]]["image"],
+                                            "text": towers[choice["text"]]["text"]}, choice=choice)
+            paths_n = [p for p, _ in items[:args.n]]
+            caps_n = [c for _, c in items[:args.n]]
+            pixels = decode(paths_n)
 
-        def model_only():
-            for i in range(0, len(pixels), args.batch):
-                lm.encode_images(pixels[i:i + args.batch])
-            lm.encode_texts(caps_n, args.batch)
+            def model_only():
+                for i in range(0, len(pixels), args.batch):
+                    lm.encode_images(pixels[i:i + args.batch])
+                lm.encode_texts(caps_n, args.batch)
 
-        model_only()  # warm-up
-        t_model, t_pipe = [], []
-        for _ in range(2):
-            t0 = time.perf_counter()
-            pipeline(lm, paths_n, caps_n, args.batch, workers, margin)
-            t_pipe.append(time.perf_counter() - t0)
-            t0 = time.perf_counter()
-            model_only()
-            t_model.append(time.perf_counter() - t0)
-        out["model_only_per_s"] = round(args.n / min(t_model), 2)
-        out["pipeline_per_s"] = round(args.n / min(t_pipe), 2)
-        out["ratio"] = round(min(t_model) / min(t_pipe), 3)
-        emb, _ = pipeline(lm, paths_n[:8], caps_n[:8], args.batch, 0, margin)
-        out["pipeline_matches_model_only"] = bool(np.max(np.abs(emb - lm.encode_images(pixels[:8]))) < 1e-5)
+            model_only()  # warm-up
+            t_model, t_pipe = [], []
+            for _ in range(2):
+                t0 = time.perf_counter()
+                pipeline(lm, paths_n, caps_n, args.batch, workers, margin)
+                t_pipe.append(time.perf_counter() - t0)
+                t0 = time.perf_counter()
+                model_only()
+                t_model.append(time.perf_counter() - t0)
+            out["model_only_per_s"] = round(args.n / min(t_model), 2)
+            out["pipeline_per_s"] = round(args.n / min(t_pipe), 2)
+            out["ratio"] = round(min(t_model) / min(t_pipe), 3)
+            emb, _ = pipeline(lm, paths_n[:8], caps_n[:8], args.batch, 0, margin)
+            out["pipeline_matches_model_only"] = bool(np.max(np.abs(emb - lm.encode_images(pixels[:8]))) < 1e-5)
 
         if not args.skip_preprocess:
             demo = clip.load_model("demo", device="cpu")
-            out["preprocess"] = preprocess_figures(items[:min(len(items), 48)], base, demo)
+            label = "vit_b32_random" if args.model == "ViT-B-32" else "demo_as_bench_model"
+            out["preprocess"] = preprocess_figures(items[:min(len(items), 48)], base, demo, label)
     if args.json:
         print(json.dumps(out))
     else:

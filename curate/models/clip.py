@@ -592,6 +592,7 @@ def _load_base(model: str, pretrained: str, dev: str, cache_dir: str | None, qua
                      weights_sha256=sha, device=dev, quantized=bool(quantize))
     lm.trim_text = trimming_is_exact(lm)
     _MODEL_CACHE.clear()
+    _PATH_CACHE.clear()  # compiled towers of the previous model
     _MODEL_CACHE[key] = lm
     return lm
 

@@ -23,10 +23,16 @@ from typing import Any
 import numpy as np
 
 # JPEG draft: the decoded image keeps the side that the resize keys on (the shorter side for
-# open_clip's default "shortest" mode) at >= this many times the model input. Measured with
-# bench/throughput.py --draft on public photos (skimage/sklearn/matplotlib samples) at 1024x768:
-# see curate/models/BACKENDS.md for the agreement shift of each margin.
-DRAFT_MARGIN = 1.0
+# open_clip's default "shortest" mode) at >= this many times the model input, so the bicubic
+# resize after it still averages over >= 1.5 source pixels. Measured by bench/throughput.py on
+# public photos cut to 1024x768: ViT-B-32 (224 px) decodes at 1/2 scale, 2.2x faster decode +
+# resize, image-caption cosines moved by <= 0.0008; margin 2 (the earlier rule) gives no
+# reduction there. See curate/models/BACKENDS.md.
+DRAFT_MARGIN = 1.5
+# Smallest DCT scale used is 1/4: at 1/8 libjpeg keeps only each 8x8 block's DC coefficient (a
+# box average), which moved the demo model's (64 px) cosines by 0.039 vs 0.0074 at 1/4
+# (bench/throughput.py, 1024x768 photos).
+MAX_DRAFT_REDUCTION = 4
 
 
 def draft_request(size_wh: tuple[int, int], model_hw: tuple[int, int], resize_mode: str = "shortest",
@@ -52,7 +58,10 @@ def draft_request(size_wh: tuple[int, int], model_hw: tuple[int, int], resize_mo
     need *= margin
     if need >= 0.5:  # not even a 1/2 reduction keeps enough pixels
         return None
-    return (max(1, math.ceil(w * need)), max(1, math.ceil(h * need)))
+    # Pillow's scale is the largest of 8, 4, 2, 1 <= min(w // req_w, h // req_h): keeping
+    # w // req_w below 2 * MAX_DRAFT_REDUCTION caps the reduction.
+    floor_w = w // (2 * MAX_DRAFT_REDUCTION) + 1
+    return (max(1, math.ceil(w * need), floor_w), max(1, math.ceil(h * need)))
 
 
 def open_for_model(data: bytes, model_hw: tuple[int, int], rgb: Callable[[Any], Any],
