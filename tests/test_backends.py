@@ -243,8 +243,8 @@ def test_vit_b32_path_matches_torch_fp32_and_is_batch_independent(vit_b32, backe
 # ------------------------------------------------------------------ choosing, caching, identity
 
 
-def test_auto_picks_the_fastest_path_within_tolerance_and_remembers_it(demo, tmp_path):
-    cache = str(tmp_path / "cache")
+def test_auto_picks_the_fastest_path_within_tolerance_and_remembers_it(demo):
+    cache = demo.cache_dir  # the session's exports; no pick is remembered there yet
     lm = clip.load_model("demo", device="cpu", backend="auto", precision="auto", calibration=demo.calibration,
                          cache_dir=cache, threads=2)
     ch = lm.choice

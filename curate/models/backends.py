@@ -30,7 +30,6 @@ log = logging.getLogger(__name__)
 
 BACKENDS = ("torch", "onnxruntime", "openvino")
 PRECISIONS = ("fp32", "bf16", "fp16", "int8")
-EXTRAS = {"onnxruntime": "onnx", "openvino": "openvino"}
 # Largest change of any image-caption cosine against torch fp32 that `auto` accepts. 0.005 is a
 # small fraction of the gap between LAION's thresholds (0.28 / 0.30, see FACTS) and typical scores.
 DEFAULT_TOLERANCE = 0.005
@@ -67,12 +66,27 @@ def cpu_has_vnni() -> bool:
     return bool(flags & {"avx512_vnni", "avx_vnni", "amx_int8"})
 
 
-def installed(backend: str) -> bool:
+# What each compiled path imports: the runtime, plus the exporter (onnx, onnxscript); OpenVINO's
+# int8 graph is made by ONNX Runtime's static quantiser.
+NEEDS = {
+    "onnxruntime": (("onnxruntime", "onnx"), ("onnx", "onnx"), ("onnxscript", "onnx")),
+    "openvino": (("openvino", "openvino"), ("onnx", "onnx"), ("onnxscript", "onnx")),
+}
+INT8_NEEDS = (("onnxruntime", "onnx"),)
+
+
+def missing(backend: str, precision: str = "fp32") -> list[tuple[str, str]]:
+    """(module, pip extra) pairs a path needs that are not installed."""
     import importlib.util
 
     if backend == "torch":
-        return True
-    return importlib.util.find_spec(backend) is not None
+        return []
+    need = NEEDS[backend] + (INT8_NEEDS if precision == "int8" else ())
+    return [(m, e) for m, e in need if importlib.util.find_spec(m) is None]
+
+
+def installed(backend: str) -> bool:
+    return backend == "torch" or not missing(backend)
 
 
 def _openvino_caps() -> set[str]:
@@ -139,13 +153,17 @@ def plan(device: str, backend: str = "auto", precision: str = "auto") -> list[tu
     for b in names:
         if not installed(b):
             if backend != "auto":
-                export.require(b, EXTRAS[b])  # raises the named error
+                module, extra = missing(b)[0]
+                export.require(module, extra)  # raises the named error
             continue
         for p, reason in cpu_precisions(b).items():
             if precision not in ("auto", p):
                 continue
-            if reason:
-                why.append(f"{b}-{p}: {reason}")
+            gone = missing(b, p)
+            if reason or gone:
+                why.append(f"{b}-{p}: {reason or gone[0][0] + ' is not installed'}")
+                if gone and not reason and backend != "auto" and precision != "auto":
+                    export.require(*gone[0])
             else:
                 out.append((b, p))
     if not out:
@@ -609,3 +627,10 @@ def fit_batch_size(lm: Any, default: int, *, cap: int = 1024, headroom: float = 
     free, _ = torch.cuda.mem_get_info(device)
     fit = int(free * headroom // per_image)
     return int(max(8, min(cap, fit) // 8 * 8))
+
+
+def summary(choice: dict) -> dict:
+    """The few figures of a choice worth keeping in a manifest or report."""
+    keys = ("image", "text", "per_s", "reference_per_s", "speedup", "max_agreement_diff", "tolerance",
+            "within_tolerance", "measured", "reused", "calibration")
+    return {k: choice[k] for k in keys if k in choice}
