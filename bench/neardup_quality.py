@@ -32,12 +32,13 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(ROOT / "bench"))
 
-import photoset  # noqa: E402
 from curate import hashing  # noqa: E402
 from curate.config import DecideConfig, PipelineConfig  # noqa: E402
 from curate.stages import hashes as hashes_mod  # noqa: E402
 from curate.stages import neardup  # noqa: E402
 from curate.stages.base import StageContext  # noqa: E402
+
+import photoset  # noqa: E402
 
 
 def build_corpus(large: bool, seed: int) -> list[dict]:

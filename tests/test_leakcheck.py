@@ -2,11 +2,7 @@
 set, the CLI contract (exit 1 on leaks, --json), the HTML page, and a run's own train/eval split."""
 from __future__ import annotations
 
-from conftest import scene_photo, to_jpeg
-
-import io
 import json
-import random
 import shutil
 import sys
 from pathlib import Path
@@ -24,9 +20,10 @@ import curate.stages.split  # noqa: F401
 from curate import imagesets
 from curate.leakcheck import cross_set_pairs, leakcheck
 
+from conftest import scene_photo, to_jpeg
+
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT / "sample_corpus"))
-import workshop  # noqa: E402
 
 
 
@@ -263,7 +260,7 @@ def small_run(tmp_path_factory):
             (images / f"k{i:02d}_small.jpg").write_bytes(_jpeg(img.resize((360, 270)), quality=80))
             (images / f"k{i:02d}_small.txt").write_text(f"a stoneware piece, photo {i}", encoding="utf-8")
     out = root / "out"
-    sets_ = ["split.eval_fraction=0.3", "split.seed=4", "inspect.min_file_bytes=0", "embed.enabled=false",
+    sets_ = ["split.eval_fraction=0.3", "split.seed=4", "inspect.min_file_bytes=0", "embed.enabled=false", "agreement.enabled=false",
              "agreement.enabled=false"]
     from curate.plan import config_sections
 
