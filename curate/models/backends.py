@@ -126,6 +126,30 @@ def cuda_precisions() -> dict[str, str]:
             "int8": "int8 is offered on CPU only"}
 
 
+def refusal(backend: str, precision: str, device: str = "auto") -> str:
+    """Why a configured (backend, precision, device) can never run, on any machine; "" when it may.
+
+    What depends on the machine (bf16 support, installed runtimes, a GPU) is checked by `plan`.
+    """
+    if backend not in ("auto", *BACKENDS):
+        return f"unknown backend {backend!r}: expected auto, {', '.join(BACKENDS)}"
+    if precision not in ("auto", *PRECISIONS):
+        return f"unknown precision {precision!r}: expected auto, {', '.join(PRECISIONS)}"
+    cuda, cpu = device.startswith("cuda"), device == "cpu"
+    if backend in ("onnxruntime", "openvino") and cuda:
+        return f"backend {backend} runs on CPU only; on CUDA use backend torch or auto"
+    if precision == "int8" and backend == "torch":
+        return ("torch has no static int8 path; use backend onnxruntime or openvino (embed.quantize is torch's "
+                "dynamic int8, whose results depend on batch composition)")
+    if precision == "int8" and cuda:
+        return "int8 is offered on CPU only"
+    if precision == "fp16" and (cpu or backend in ("onnxruntime", "openvino")):
+        return "fp16 is offered on CUDA only, with backend torch or auto"
+    if precision == "bf16" and backend == "onnxruntime":
+        return "onnxruntime's CPU provider has no bf16 matrix kernels"
+    return ""
+
+
 def plan(device: str, backend: str = "auto", precision: str = "auto") -> list[tuple[str, str]]:
     """The (backend, precision) paths to consider, torch fp32 first where it is one of them.
 
