@@ -69,8 +69,9 @@ MARGINS = (0.0, 1.0, 1.5, 2.0)
 def make_one(i: int, folder: str, photos: dict | None = None) -> tuple[str, str]:
     """Image i: a 4:3 window (60-100% of the photo's width or height) of one public photo,
     resized to 1024x768, mirrored half the time, saved as JPEG quality 90."""
-    import photoset
     from PIL import Image
+
+    import photoset
 
     rng = random.Random(SEED + i)
     names = list(CAPTIONS)
@@ -263,7 +264,7 @@ def main(argv: list[str] | None = None) -> int:
     import numpy as np
     import torch
 
-    from curate.models import backends, clip
+    from curate.models import backends, clip, export
     from curate.models.preprocess import DRAFT_MARGIN, Normaliser, decode_for_model
 
     cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
@@ -345,7 +346,8 @@ def main(argv: list[str] | None = None) -> int:
                 }
             out["chosen"] = {k: choice[k] for k in ("image", "text", "per_s", "speedup", "max_agreement_diff", "tolerance")}
             out["caption_tokens_median"] = int(np.median(clip.token_lengths(base.tokenize(caps)).numpy()))
-            cache_root = Path(cache) / "curate-exports"
+            # this model's entries only (a reused --cache-dir may hold other models' graphs too)
+            cache_root = export.cache_root(cache) / base.weights_sha256[:16]
             out["export_cache_bytes"] = sum(p.stat().st_size for p in cache_root.rglob("*") if p.is_file())
 
             # Model-only vs pipeline at the chosen path (one loaded model with the picked towers).

@@ -208,3 +208,20 @@ def test_pipeline_on_auto_keeps_the_demo_decisions_and_records_its_pick(corpus, 
     res, _, again = _run(corpus, out, cache, "auto", "auto")
     assert again["paths"] == ident["paths"]
     assert not res.ran, res.ran
+
+
+def test_decode_threads_give_the_inline_result_in_order(corpus):
+    """With a compiled runtime loaded the stage decodes in threads (no fork); same pixels, same order."""
+    import numpy as np
+
+    from curate.models import clip
+
+    lm = clip.load_model("demo", device="cpu")
+    locs = [str(p) for p in sorted(corpus.glob("*.jpg"))] + [str(corpus / "missing.jpg")]
+    ds = embed.ImageChunks(locs, lm.pil_steps(), lm.image_size, embed.DRAFT_MARGIN * max(lm.image_size), chunk=3)
+    inline = list(embed.iter_chunks(ds, 0))
+    threaded = list(embed.iter_chunks(ds, 2, threads=True))
+    assert [c[0] for c in threaded] == list(range(len(ds)))
+    for (i, px, err), (j, px2, err2) in zip(inline, threaded):
+        assert i == j and err == err2 and np.array_equal(px, px2)
+    assert inline[-1][2][-1] is not None  # the missing file is an error for its item, not a crash

@@ -15,6 +15,7 @@ import json
 import logging
 import math
 import os
+import sys
 from dataclasses import dataclass, field, replace
 from typing import Any, Literal
 
@@ -211,11 +212,14 @@ def decode_worker_count(cfg: EmbedConfig, device: str) -> int:
     return max(1, cores - 1) if device.startswith("cuda") else max(1, cores // 4)
 
 
-def iter_chunks(dataset: ImageChunks, workers: int):
-    """Yield the dataset's items in order, from worker processes when workers > 0."""
+def iter_chunks(dataset: ImageChunks, workers: int, threads: bool = False):
+    """Yield the dataset's items in order, from `workers` worker processes (threads with `threads`)."""
     if workers <= 0:
         for i in range(len(dataset)):
             yield dataset[i]
+        return
+    if threads:
+        yield from _thread_chunks(dataset, workers)
         return
     from torch.utils.data import DataLoader
 
@@ -223,6 +227,22 @@ def iter_chunks(dataset: ImageChunks, workers: int):
                         prefetch_factor=4, persistent_workers=False)
     for i, pixels, errors in loader:
         yield int(i), np.asarray(pixels), list(errors)
+
+
+def _thread_chunks(dataset: ImageChunks, workers: int):
+    """Items decoded by a thread pool, in order, at most 4 per thread ahead (Pillow's decode and
+    resize release the GIL, so threads decode in parallel with each other and with the model)."""
+    from collections import deque
+    from concurrent.futures import ThreadPoolExecutor
+
+    with ThreadPoolExecutor(workers, thread_name_prefix="curate-decode") as pool:
+        ahead: deque = deque()
+        for i in range(len(dataset)):
+            ahead.append(pool.submit(dataset.__getitem__, i))
+            if len(ahead) > 4 * workers:
+                yield ahead.popleft().result()
+        while ahead:
+            yield ahead.popleft().result()
 
 
 @stage(name=NAME, version=VERSION, config=EmbedConfig, kind="shard", phase="model", alive_only=True, sections=("input",),
@@ -249,7 +269,10 @@ def run(table: pa.Table, cfg: EmbedConfig, ctx: StageContext) -> pa.Table:
         dataset = ImageChunks(d.image_locs, lm.pil_steps(), lm.image_size, draft_px,
                               max_bytes=ctx.config.section("input").max_file_bytes)
         workers = decode_worker_count(cfg, lm.device) if len(d.image_locs) > cfg.batch_size else 0
-        chunks = iter_chunks(dataset, workers)  # workers start decoding on the first next()
+        # A process that has run ONNX Runtime or OpenVINO (their own thread pools) is not forked: a forked
+        # decode worker crashed the process once in three tries after an auto pick. Threads decode there.
+        compiled = any(m in sys.modules for m in ("onnxruntime", "openvino"))
+        chunks = iter_chunks(dataset, workers, threads=compiled)  # workers start on the first next()
         first = next(chunks, None)
         txt_vecs = lm.encode_texts(d.texts, cfg.batch_size)  # overlaps with decoding
         pending: list[tuple[int, np.ndarray]] = []  # (image index, pixels) waiting for a batch
