@@ -226,8 +226,10 @@ def _planned(st: Stage, cfg: PipelineConfig, needs: tuple[str, ...], providers: 
     order = {s.name: i for i, s in enumerate(ordered)}
     inputs = sorted({providers.get(c, SOURCE) for c in needs if c != FLAGS_BEFORE.name},
                     key=lambda s: -1 if s == SOURCE else order[s])
-    fp = fingerprint(st.name, st.version, view.to_dict(), ident, [(c.name, str(c.type)) for c in cols],
-                     list(needs), st.alive_only)
+    # An identity's "measured" entry (speeds, errors of a measured choice) is recorded, not fingerprinted:
+    # what it chose is in the identity itself.
+    fp = fingerprint(st.name, st.version, view.to_dict(), {k: v for k, v in ident.items() if k != "measured"},
+                     [(c.name, str(c.type)) for c in cols], list(needs), st.alive_only)
     return PlannedStage(st, view, needs, tuple(inputs), cols, fp, ident)
 
 

@@ -17,7 +17,7 @@ import hashlib
 import json
 import logging
 import os
-from dataclasses import dataclass
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
@@ -157,16 +157,29 @@ def file_sha256(path: str) -> str:
     return _SHA_CACHE[key]
 
 
-def identity(model: str, pretrained: str = "", cache_dir: str | None = None) -> dict:
-    """Model name, tag or path, and weights checksum: for the fingerprint and the manifest."""
+def identity(model: str, pretrained: str = "", cache_dir: str | None = None, *, backend: str = "torch",
+             precision: str = "fp32", tolerance: float | None = None) -> dict:
+    """Model name, tag or path, weights checksum, and the inference path where it changes the numbers.
+
+    torch fp32 (the reference) adds nothing, so its fingerprints are those of earlier versions;
+    any other path adds backend and precision ("auto" adds the tolerance it picks within).
+    """
     ref = resolve(model, pretrained)
     path = weights_file(ref, cache_dir)
-    return {
+    out = {
         "model": ref.model,
         "pretrained": ref.pretrained,
         "weights_file": Path(path).name,
         "weights_sha256": file_sha256(path),
     }
+    if (backend, precision) != ("torch", "fp32"):
+        out["backend"] = backend
+        out["precision"] = precision
+        if "auto" in (backend, precision):
+            from .backends import DEFAULT_TOLERANCE
+
+            out["tolerance"] = DEFAULT_TOLERANCE if tolerance is None else float(tolerance)
+    return out
 
 
 def read_json_config(path: str | Path) -> dict:
@@ -287,6 +300,8 @@ class LoadedModel:
     quantized: bool
     trim_text: bool = False  # set by load_model after checking trimming is exact for this model
     dim: int = 0  # embedding size, found on first use
+    towers: dict | None = None  # {"image": Tower, "text": Tower}; None = eager torch fp32 (self.model)
+    choice: dict = field(default_factory=dict)  # the inference path per tower and how it was chosen
 
     @property
     def image_size(self) -> tuple[int, int]:
@@ -297,21 +312,46 @@ class LoadedModel:
         """open_clip's eval transform up to (not including) the tensor conversion: PIL -> PIL."""
         return pil_steps(self.preprocess_cfg)
 
+    @property
+    def backend(self) -> str:
+        """Inference path of each tower, e.g. "openvino-int8" (one name when both towers share it)."""
+        if not self.towers:
+            return "torch-fp32"
+        names = {self.towers["image"].name, self.towers["text"].name}
+        return names.pop() if len(names) == 1 else f"image:{self.towers['image'].name},text:{self.towers['text'].name}"
+
+    def _tower(self, kind: str) -> Any:
+        if not self.towers:  # the eager fp32 model itself
+            from .backends import TorchTower
+
+            return TorchTower(self.model, kind, self.device, "fp32", self.trim_text)
+        return self.towers[kind]
+
     def encode_images(self, batch: Any) -> Any:
-        """uint8 tensor [N, H, W, 3] (output of pil_steps) -> float32 numpy [N, D], L2-normalised.
+        """Pixels -> float32 numpy [N, D], L2-normalised.
 
-        Same arithmetic as open_clip's ToTensor (divide by 255) then Normalize(mean, std).
+        `batch`: uint8 [N, H, W, 3] (output of pil_steps; normalised here with the arithmetic of
+        open_clip's ToTensor + Normalize), or float32 [N, 3, H, W] already normalised
+        (preprocess.Normaliser). numpy arrays or torch tensors.
         """
-        import torch
-        import torch.nn.functional as F
+        import numpy as np
 
-        mean = torch.tensor(self.preprocess_cfg["mean"], dtype=torch.float32, device=self.device)
-        std = torch.tensor(self.preprocess_cfg["std"], dtype=torch.float32, device=self.device)
-        with torch.inference_mode():
-            x = batch.to(self.device).permute(0, 3, 1, 2).float().div(255)
-            x = (x - mean[:, None, None]) / std[:, None, None]
-            out = self.model.encode_image(x)
-            return F.normalize(out.float(), dim=-1).cpu().numpy()
+        from .backends import TorchTower, normalised
+        from .preprocess import Normaliser
+
+        tower = self._tower("image")
+        arr = batch
+        on_host = str(getattr(batch, "device", "cpu")) == "cpu"  # a tensor on a GPU stays there
+        if on_host and hasattr(batch, "numpy") and not hasattr(batch, "__array_interface__"):
+            arr = batch.numpy()  # a CPU torch tensor: view it as numpy
+        dtype = str(getattr(arr, "dtype", ""))
+        if dtype.endswith("uint8"):
+            if isinstance(tower, TorchTower) and tower.device != "cpu":
+                return normalised(tower.from_uint8(arr, self.preprocess_cfg["mean"], self.preprocess_cfg["std"]))
+            x = Normaliser(self.preprocess_cfg["mean"], self.preprocess_cfg["std"])(np.asarray(arr))
+        else:
+            x = arr if isinstance(tower, TorchTower) else np.asarray(arr, dtype=np.float32)
+        return normalised(tower(x))
 
     def tokenize(self, texts: list[str]) -> Any:
         return self.tokenizer(list(texts))
@@ -325,26 +365,28 @@ class LoadedModel:
         """
         import numpy as np
         import torch
-        import torch.nn.functional as F
+
+        from .backends import normalised
 
         trim = self.trim_text if trim is None else (trim and self.trim_text)
         n = len(texts)
         if n == 0:
             return np.zeros((0, self.embed_dim()), dtype=np.float32)
+        tower = self._tower("text")
         tokens = self.tokenize(texts)
         lengths = token_lengths(tokens)
         order = np.argsort(lengths.numpy(), kind="stable")
         out = np.empty((n, self.embed_dim()), dtype=np.float32)
-        with torch.inference_mode():
-            for i in range(0, n, batch_size):
-                idx = order[i:i + batch_size]
-                sub = tokens[torch.as_tensor(idx)]
-                if trim:
-                    sub = sub[:, : int(lengths[torch.as_tensor(idx)].max())]
-                    feats = _encode_text_trimmed(self.model, sub.to(self.device))
-                else:
-                    feats = self.model.encode_text(sub.to(self.device))
-                out[idx] = F.normalize(feats.float(), dim=-1).cpu().numpy()
+        for i in range(0, n, batch_size):
+            idx = order[i:i + batch_size]
+            sub = tokens[torch.as_tensor(idx)]
+            if trim:
+                sub = sub[:, : max(2, int(lengths[torch.as_tensor(idx)].max()))]
+            if tower.backend == "torch":
+                feats = tower.encode(sub, trim)
+            else:
+                feats = tower(sub.numpy().astype(np.int64))
+            out[idx] = normalised(feats)
         return out
 
     def embed_dim(self) -> int:
@@ -457,12 +499,61 @@ def pick_device(device: str) -> str:
 
 
 _MODEL_CACHE: dict[tuple, LoadedModel] = {}
+_PATH_CACHE: dict[tuple, LoadedModel] = {}
 
 
 def load_model(model: str, pretrained: str = "", *, device: str = "auto", cache_dir: str | None = None,
-               quantize: bool = False) -> LoadedModel:
-    """Build, load and ready a model for inference. The last one loaded is kept for the next shard."""
+               quantize: bool = False, backend: str = "torch", precision: str = "fp32",
+               calibration: Any = None, tolerance: float | None = None, threads: int = 0,
+               batch_size: int = 32) -> LoadedModel:
+    """Build, load and ready a model for inference. The last one loaded is kept for the next shard.
+
+    backend: "torch" | "onnxruntime" | "openvino" | "auto"; precision: "fp32" | "bf16" | "fp16"
+    (CUDA) | "int8" | "auto". "auto" measures the candidate paths on `calibration` and takes the
+    fastest whose image-caption cosines stay within `tolerance` of torch fp32 (see
+    curate.models.backends). `calibration`: a backends.Calibration of images and captions from
+    the run, or a callable (LoadedModel -> Calibration) called with the fp32 model, so it can
+    decode images with the model's own preprocessing; needed for int8 and for choosing.
+    `threads`: CPU threads of the compiled runtimes (0 = torch's current setting).
+    `quantize` is the older dynamic int8 of the torch image tower (its results depend on batch
+    composition); prefer precision = "int8".
+    """
     dev = pick_device(device)
+    base = _load_base(model, pretrained, dev, cache_dir, quantize)
+    if (backend, precision) == ("torch", "fp32") and calibration is None:
+        return base
+    if quantize and backend != "torch":
+        raise ModelError("quantize applies to the torch backend only; use precision = 'int8' with another backend")
+    import torch
+
+    from . import backends
+
+    cal = calibration(base) if callable(calibration) else calibration
+    if cal is not None and not isinstance(cal, backends.Calibration):
+        images, captions = cal
+        cal = backends.Calibration(images, tuple(captions))
+    tol = backends.DEFAULT_TOLERANCE if tolerance is None else float(tolerance)
+    n_threads = int(threads) or torch.get_num_threads()
+    key = (model, pretrained, dev, cache_dir or "", bool(quantize), backend, precision,
+           cal.digest() if cal is not None else "", tol, n_threads, int(batch_size))
+    if key in _PATH_CACHE:
+        return _PATH_CACHE[key]
+    before = torch.get_num_threads()
+    torch.set_num_threads(n_threads)  # the torch paths are measured with the same threads as the others
+    try:
+        towers, choice = backends.choose(base, device=dev, backend=backend, precision=precision, calibration=cal,
+                                         tolerance=tol, cache_dir=cache_dir, threads=n_threads,
+                                         batch=int(batch_size))
+    finally:
+        torch.set_num_threads(before)
+    lm = replace(base, towers=towers, choice=choice)
+    _PATH_CACHE.clear()
+    _PATH_CACHE[key] = lm
+    return lm
+
+
+def _load_base(model: str, pretrained: str, dev: str, cache_dir: str | None, quantize: bool) -> LoadedModel:
+    """The eager torch fp32 model (dynamic int8 image tower with quantize), cached for the next shard."""
     key = (model, pretrained, dev, cache_dir or "", bool(quantize))
     if key in _MODEL_CACHE:
         return _MODEL_CACHE[key]
@@ -501,6 +592,7 @@ def load_model(model: str, pretrained: str = "", *, device: str = "auto", cache_
                      weights_sha256=sha, device=dev, quantized=bool(quantize))
     lm.trim_text = trimming_is_exact(lm)
     _MODEL_CACHE.clear()
+    _PATH_CACHE.clear()  # compiled towers of the previous model
     _MODEL_CACHE[key] = lm
     return lm
 

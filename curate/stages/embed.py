@@ -11,15 +11,19 @@ from __future__ import annotations
 
 import functools
 import io
+import json
 import logging
 import math
 import os
-from dataclasses import dataclass, field
+import sys
+from dataclasses import dataclass, field, replace
+from typing import Any, Literal
 
 import numpy as np
 import pyarrow as pa
 
 from ..checks import CHECKS_TYPE, check
+from ..models import backends
 from .base import CheckSpec, Column, ConfigView, StageContext, checks_column, stage
 
 NAME = "embed"
@@ -52,10 +56,23 @@ class EmbedConfig:
     # drafting down to 1x the input size).
     jpeg_draft: bool = True
     # Dynamic int8 quantisation of the image tower's Linear layers (torch.ao), CPU only. Faster;
-    # agreement moves by less than 0.01 on the demo corpus (bench/throughput.py --quantize).
+    # agreement moves by less than 0.01 on the demo corpus. Results depend on batch-mates; precision =
+    # "int8" (static scales) does not.
     quantize: bool = False
     # Download cache for pretrained tags; empty = open_clip's standard cache (see README).
     cache_dir: str = ""
+    # torch (the reference: open_clip's own forward pass), onnxruntime or openvino (a graph exported once
+    # per weights digest), or auto: the fastest path measured here within `tolerance` (models/BACKENDS.md).
+    backend: Literal["auto", "torch", "onnxruntime", "openvino"] = "torch"
+    # fp32 (the reference), bf16 (where the runtime reports CPU support), fp16 (CUDA), int8 (onnxruntime,
+    # openvino; static scales fitted on the run's first images, so batch-mates never matter), or auto.
+    precision: Literal["auto", "fp32", "bf16", "fp16", "int8"] = "fp32"
+    # auto: largest change of any image-caption cosine vs torch fp32 a path may make; 0.005 is a quarter
+    # of the 0.02 between LAION-5B's and LAION-400M's thresholds (0.28, 0.30).
+    tolerance: float = backends.DEFAULT_TOLERANCE
+    # auto, int8: images with captions from the start of the input (source order); half fit int8
+    # scales, half measure each path (64: what bench/throughput.py calibrates with).
+    calibration_samples: int = 64
 
     def validate(self) -> None:
         if self.batch_size < 1:
@@ -68,6 +85,22 @@ class EmbedConfig:
             raise ValueError("quantize works on CPU only; set device = 'cpu' or 'auto'")
         if not self.model.strip():
             raise ValueError("model is empty: give an open_clip architecture name, 'demo' or a config .json")
+        why = backends.refusal(self.backend, self.precision, self.device)
+        if why:
+            raise ValueError(f"backend = {self.backend!r}, precision = {self.precision!r}: {why}")
+        if self.quantize and (self.backend, self.precision) != ("torch", "fp32"):
+            raise ValueError("quantize is torch's dynamic int8 of the fp32 image tower; with another backend or "
+                             "precision set quantize = false (precision = 'int8' is the static int8)")
+        if not 0 < self.tolerance <= 2:
+            raise ValueError(f"tolerance must be in (0, 2] (a cosine change), got {self.tolerance}")
+        if self.calibration_samples < backends.MIN_CALIBRATION:
+            raise ValueError(f"calibration_samples must be >= {backends.MIN_CALIBRATION}, "
+                             f"got {self.calibration_samples}")
+
+    @property
+    def reference(self) -> bool:
+        """True for the reference path (torch fp32), which needs no export, calibration or measuring."""
+        return (self.backend, self.precision) == ("torch", "fp32")
 
 
 CHECKS = (
@@ -179,11 +212,14 @@ def decode_worker_count(cfg: EmbedConfig, device: str) -> int:
     return max(1, cores - 1) if device.startswith("cuda") else max(1, cores // 4)
 
 
-def iter_chunks(dataset: ImageChunks, workers: int):
-    """Yield the dataset's items in order, from worker processes when workers > 0."""
+def iter_chunks(dataset: ImageChunks, workers: int, threads: bool = False):
+    """Yield the dataset's items in order, from `workers` worker processes (threads with `threads`)."""
     if workers <= 0:
         for i in range(len(dataset)):
             yield dataset[i]
+        return
+    if threads:
+        yield from _thread_chunks(dataset, workers)
         return
     from torch.utils.data import DataLoader
 
@@ -193,6 +229,22 @@ def iter_chunks(dataset: ImageChunks, workers: int):
         yield int(i), np.asarray(pixels), list(errors)
 
 
+def _thread_chunks(dataset: ImageChunks, workers: int):
+    """Items decoded by a thread pool, in order, at most 4 per thread ahead (Pillow's decode and
+    resize release the GIL, so threads decode in parallel with each other and with the model)."""
+    from collections import deque
+    from concurrent.futures import ThreadPoolExecutor
+
+    with ThreadPoolExecutor(workers, thread_name_prefix="curate-decode") as pool:
+        ahead: deque = deque()
+        for i in range(len(dataset)):
+            ahead.append(pool.submit(dataset.__getitem__, i))
+            if len(ahead) > 4 * workers:
+                yield ahead.popleft().result()
+        while ahead:
+            yield ahead.popleft().result()
+
+
 @stage(name=NAME, version=VERSION, config=EmbedConfig, kind="shard", phase="model", alive_only=True, sections=("input",),
        needs=("locator", "caption", "decoded", "sha256"), provides=columns, checks=CHECKS,
        parallel="inline", cache_key=("sha256", "caption"), identity=lambda view: identity(view))
@@ -200,59 +252,39 @@ def run(table: pa.Table, cfg: EmbedConfig, ctx: StageContext) -> pa.Table:
     """CLIP image and caption embeddings of every live sample."""
     import torch
 
-    from ..models import clip as clipmod
-
-    lm = clipmod.load_model(cfg.model, cfg.pretrained, device=cfg.device, cache_dir=cfg.cache_dir or None,
-                            quantize=cfg.quantize)
+    lm = load(ctx.config)
+    if "fallback" in lm.choice and not lm.choice.get("told"):
+        lm.choice["told"] = True  # once per loaded model, in the run (the plan runs before its notes are kept)
+        log.warning("embed: backend/precision auto fell back to torch fp32: %s", lm.choice["fallback"])
     dim = lm.embed_dim()
-    n = table.num_rows
-    decoded = table.column("decoded").to_pylist()
-    captions = table.column("caption").to_pylist()
-    shas = table.column("sha256").to_pylist() if "sha256" in table.column_names else [None] * n
-    locators = table.column("locator").to_pylist()
-    eligible = [i for i in range(n) if decoded[i] is True and captions[i] is not None]
-
-    # Distinct images (by content hash) and distinct captions, each encoded once.
-    image_key: dict[str, int] = {}
-    image_locs: list[str] = []
-    row_image = np.full(n, -1, dtype=np.int64)
-    text_key: dict[str, int] = {}
-    row_text = np.full(n, -1, dtype=np.int64)
-    for i in eligible:
-        key = shas[i] or f"locator:{locators[i]}"
-        if key not in image_key:
-            image_key[key] = len(image_locs)
-            image_locs.append(locators[i])
-        row_image[i] = image_key[key]
-        row_text[i] = text_key.setdefault(captions[i], len(text_key))
-    rows_per_image = np.bincount(row_image[row_image >= 0], minlength=len(image_locs))
-    if ctx.progress is not None and n - len(eligible):
-        ctx.progress.advance(n - len(eligible))
-
-    img_vecs = np.zeros((len(image_locs), dim), dtype=np.float32)
-    img_err: list[str | None] = [None] * len(image_locs)
+    d = Distinct(table)
+    if ctx.progress is not None and table.num_rows - d.eligible:
+        ctx.progress.advance(table.num_rows - d.eligible)
+    img_vecs = np.zeros((len(d.image_locs), dim), dtype=np.float32)
+    img_err: list[str | None] = [None] * len(d.image_locs)
     threads_before = torch.get_num_threads()
     torch.set_num_threads(cfg.threads or available_cores())
     try:
         draft_px = DRAFT_MARGIN * max(lm.image_size) if cfg.jpeg_draft else 0
-        dataset = ImageChunks(image_locs, lm.pil_steps(), lm.image_size, draft_px,
+        dataset = ImageChunks(d.image_locs, lm.pil_steps(), lm.image_size, draft_px,
                               max_bytes=ctx.config.section("input").max_file_bytes)
-        workers = decode_worker_count(cfg, lm.device) if len(image_locs) > cfg.batch_size else 0
-        chunks = iter_chunks(dataset, workers)  # workers start decoding on the first next()
+        workers = decode_worker_count(cfg, lm.device) if len(d.image_locs) > cfg.batch_size else 0
+        # A process that has run ONNX Runtime or OpenVINO (their own thread pools) is not forked: a forked
+        # decode worker crashed the process once in three tries after an auto pick. Threads decode there.
+        compiled = any(m in sys.modules for m in ("onnxruntime", "openvino"))
+        chunks = iter_chunks(dataset, workers, threads=compiled)  # workers start on the first next()
         first = next(chunks, None)
-        txt_vecs = lm.encode_texts(list(text_key), cfg.batch_size)  # overlaps with decoding
+        txt_vecs = lm.encode_texts(d.texts, cfg.batch_size)  # overlaps with decoding
         pending: list[tuple[int, np.ndarray]] = []  # (image index, pixels) waiting for a batch
 
         def flush() -> None:
             idx = np.array([p[0] for p in pending], dtype=np.int64)
-            batch = torch.from_numpy(np.stack([p[1] for p in pending]))
-            img_vecs[idx] = lm.encode_images(batch)
+            img_vecs[idx] = lm.encode_images(torch.from_numpy(np.stack([p[1] for p in pending])))
             if ctx.progress is not None:
-                ctx.progress.advance(int(rows_per_image[idx].sum()))
+                ctx.progress.advance(int(d.rows_per_image[idx].sum()))
             pending.clear()
 
-        def consume(item: tuple[int, np.ndarray, list]) -> None:
-            ci, pixels, errors = item
+        for ci, pixels, errors in _chain(first, chunks):
             for j, err in enumerate(errors):
                 k = ci * dataset.chunk + j
                 if err is None:
@@ -260,20 +292,50 @@ def run(table: pa.Table, cfg: EmbedConfig, ctx: StageContext) -> pa.Table:
                 else:
                     img_err[k] = err
                     if ctx.progress is not None:
-                        ctx.progress.advance(int(rows_per_image[k]))
+                        ctx.progress.advance(int(d.rows_per_image[k]))
                 if len(pending) >= cfg.batch_size:
                     flush()
-
-        if first is not None:
-            consume(first)
-        for item in chunks:
-            consume(item)
         if pending:
             flush()
     finally:
         torch.set_num_threads(threads_before)
+    return _assemble(table, dim, d.row_image, d.row_text, img_vecs, img_err, txt_vecs)
 
-    return _assemble(table, dim, row_image, row_text, img_vecs, img_err, txt_vecs)
+
+def _chain(first: Any, rest: Any):
+    """`first` (when not None) followed by the items of `rest`."""
+    if first is not None:
+        yield first
+    yield from rest
+
+
+class Distinct:
+    """The live rows' distinct images (by content hash) and captions, each encoded once."""
+
+    def __init__(self, table: pa.Table):
+        n = table.num_rows
+        decoded = table.column("decoded").to_pylist()
+        captions = table.column("caption").to_pylist()
+        shas = table.column("sha256").to_pylist() if "sha256" in table.column_names else [None] * n
+        locators = table.column("locator").to_pylist()
+        image_key: dict[str, int] = {}
+        text_key: dict[str, int] = {}
+        self.image_locs: list[str] = []
+        self.row_image = np.full(n, -1, dtype=np.int64)  # row -> index into image_locs, -1 = not embedded
+        self.row_text = np.full(n, -1, dtype=np.int64)  # row -> index into texts
+        self.eligible = 0
+        for i in range(n):
+            if decoded[i] is not True or captions[i] is None:
+                continue
+            self.eligible += 1
+            key = shas[i] or f"locator:{locators[i]}"
+            if key not in image_key:
+                image_key[key] = len(self.image_locs)
+                self.image_locs.append(locators[i])
+            self.row_image[i] = image_key[key]
+            self.row_text[i] = text_key.setdefault(captions[i], len(text_key))
+        self.texts = list(text_key)
+        self.rows_per_image = np.bincount(self.row_image[self.row_image >= 0], minlength=len(self.image_locs))
 
 
 def _assemble(table: pa.Table, dim: int, row_image: np.ndarray, row_text: np.ndarray, img_vecs: np.ndarray,
@@ -304,16 +366,97 @@ def _assemble(table: pa.Table, dim: int, row_image: np.ndarray, row_text: np.nda
 
 
 def identity(view: ConfigView) -> dict:
-    """Model name, tag or path and weights checksum (downloads tagged weights on first use)."""
+    """Model name, tag or path, weights checksum and, off the reference path, the inference path each
+    tower actually uses (downloads tagged weights on first use; measures `auto` paths here, at plan
+    time, so an unsupported setting stops the run before any work)."""
     from ..models import clip as clipmod
 
     cfg = view.section(NAME)
-    out = clipmod.identity(cfg.model, cfg.pretrained, cfg.cache_dir or None)
+    out = clipmod.identity(cfg.model, cfg.pretrained, cfg.cache_dir or None, backend=cfg.backend,
+                           precision=cfg.precision, tolerance=cfg.tolerance)
     out["quantize"] = bool(cfg.quantize)
     ref = clipmod.resolve(cfg.model, cfg.pretrained)
     if ref.weights_path:
         check_checkpoint(ref.weights_path)
+    if not cfg.reference:
+        choice = load(view).choice
+        out["paths"] = {"image": choice["image"], "text": choice["text"]}
+        if any(choice[k].endswith("-int8") for k in ("image", "text")):
+            out["calibration_sha256"] = choice["calibration"]["sha256"]  # int8 scales come from it
+        # Speeds and errors: recorded in the manifest, left out of the fingerprint (curate.plan).
+        out["measured"] = {**backends.summary(choice), **({"fallback": choice["fallback"]} if "fallback" in choice
+                                                           else {})}
     return out
+
+
+# The model `load` resolved last, by the embed and input config it was resolved for: identity()
+# resolves it at plan time and the run in the same process reuses it (same paths, no re-measuring).
+_LOADED: dict[str, Any] = {}
+
+
+def load(view: ConfigView) -> Any:
+    """The model on the configured inference path (clip.LoadedModel); `auto` and int8 calibrate on the
+    run's own first images (`calibration`). A path that cannot run here raises ModelError."""
+    from ..errors import ModelError
+    from ..models import clip as clipmod
+
+    cfg = view.section(NAME)
+    key = json.dumps(view.to_dict(), sort_keys=True, default=str)
+    if key in _LOADED:
+        return _LOADED[key]
+    kw = {"device": cfg.device, "cache_dir": cfg.cache_dir or None, "quantize": cfg.quantize}
+    lm = clipmod.load_model(cfg.model, cfg.pretrained, **kw)
+    if not cfg.reference:
+        backends.plan(lm.device, cfg.backend, cfg.precision)  # the machine-specific refusals, named
+        auto = "auto" in (cfg.backend, cfg.precision)
+        cal = calibration(view, lm) if auto or cfg.precision == "int8" else None
+        if cal is None and (cfg.precision == "int8" or (auto and not lm.device.startswith("cuda"))):
+            why = (f"the input has fewer than {backends.MIN_CALIBRATION} decodable images with captions to "
+                   "calibrate on")
+            if not auto:
+                raise ModelError(f"embed.precision = 'int8' needs calibration images: {why}")
+            lm = replace(lm, choice={"image": "torch-fp32", "text": "torch-fp32", "measured": False, "fallback": why})
+        else:
+            lm = clipmod.load_model(cfg.model, cfg.pretrained, **kw, backend=cfg.backend, precision=cfg.precision,
+                                    calibration=cal, tolerance=cfg.tolerance,
+                                    threads=cfg.threads or available_cores(), batch_size=cfg.batch_size)
+    _LOADED.clear()
+    _LOADED[key] = lm
+    return lm
+
+
+def calibration(view: ConfigView, lm: Any) -> Any:
+    """The first `calibration_samples` images of the input (source order) that decode for the model,
+    with their captions, as a backends.Calibration; None when fewer than the minimum exist.
+
+    Source order is the same on every run and for any shard size, so int8 scales fitted on it do
+    not change when a run is resumed or re-sharded."""
+    from ..sources import iter_samples, read_bytes
+
+    cfg, inp = view.section(NAME), view.section("input")
+    draft_px = DRAFT_MARGIN * max(lm.image_size) if cfg.jpeg_draft else 0
+    steps, want = lm.pil_steps(), cfg.calibration_samples
+    images: list[np.ndarray] = []
+    captions: list[str] = []
+    for batch in iter_samples(inp, batch_rows=max(want, 64)):
+        rows = [r for r in batch.to_pylist() if r["locator"] and r["caption_raw"] is not None
+                and not r["source_problem"] and not r["caption_problem"]]
+        for r, data in zip(rows, read_bytes([r["locator"] for r in rows], max_bytes=inp.max_file_bytes)):
+            text = r["caption_raw"].decode("utf-8", "replace").strip()
+            try:
+                px = decode_for_model(data, steps, draft_px)
+            except Exception:  # noqa: BLE001 - an image that does not decode is simply not used
+                continue
+            if text and px.shape == (*lm.image_size, 3):
+                images.append(px)
+                captions.append(text)
+            if len(images) >= want:
+                break
+        if len(images) >= want:
+            break
+    if len(images) < backends.MIN_CALIBRATION:
+        return None
+    return backends.Calibration(np.stack(images), tuple(captions))
 
 
 def check_checkpoint(path: str) -> None:
