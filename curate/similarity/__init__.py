@@ -1,0 +1,55 @@
+"""Near-duplicate search shared by neardup, split and leakcheck.
+
+- ``codes``:   perceptual codes of one picture, one per view (crop box x transform).
+- ``hamming``: exact Hamming range search over codes and over samples with several views.
+- ``groups``:  union-find components, and near-duplicate groups with a kept sample (no chaining).
+- ``cosine``:  pairs of embeddings at or above a cosine, within one set or across two.
+- ``mih``:     the multi-index hashing engine behind ``hamming`` (internal).
+
+Only numpy is imported here; Pillow and imagehash are imported by the functions that need them.
+"""
+from __future__ import annotations
+
+from .codes import (
+    TRANSFORMS,
+    CodeSettings,
+    View,
+    code_count,
+    identity_count,
+    image_codes,
+    matched_transform,
+    views,
+)
+from .cosine import cosine_pairs, cross_cosine
+from .groups import (
+    SIGNALS,
+    Groups,
+    Signals,
+    UnionFind,
+    components,
+    greedy_leaders,
+    group,
+    sample_components,
+)
+from .hamming import (
+    CodeGraph,
+    Pairs,
+    ViewPairs,
+    code_graph,
+    cross_pairs,
+    hamming,
+    min_distance,
+    min_distances,
+    range_pairs,
+    sample_cross_pairs,
+    sample_pairs,
+    view_distances,
+)
+
+__all__ = [
+    "TRANSFORMS", "CodeSettings", "View", "code_count", "identity_count", "image_codes", "matched_transform", "views",
+    "cosine_pairs", "cross_cosine",
+    "SIGNALS", "Groups", "Signals", "UnionFind", "components", "greedy_leaders", "group", "sample_components",
+    "CodeGraph", "Pairs", "ViewPairs", "code_graph", "cross_pairs", "hamming", "min_distance", "min_distances",
+    "range_pairs", "sample_cross_pairs", "sample_pairs", "view_distances",
+]

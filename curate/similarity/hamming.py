@@ -1,0 +1,329 @@
+"""Exact Hamming search over 64-bit codes, for single codes and for samples with several views.
+
+Every search here returns exactly what a brute-force scan returns (``brute_pairs``); the engine is
+multi-index hashing (``mih``). Samples hold K codes, identity views first (``codes.views``). Two
+samples' distance is the smallest distance over view pairs in which at least one view is an
+identity view: a transformed view is compared with the other sample's untransformed views, never
+with its transformed ones. Every mirrored or turned copy is still found (its identity views meet
+the original's transformed views, or the reverse), at a fraction of the all-pairs cost.
+"""
+from __future__ import annotations
+
+from typing import Any, NamedTuple
+
+import numpy as np
+
+from . import mih
+
+BITS = mih.BITS
+
+
+class Pairs(NamedTuple):
+    """Index pairs and their distances, sorted by (i, j)."""
+
+    i: np.ndarray
+    j: np.ndarray
+    distance: np.ndarray
+
+    def __len__(self) -> int:  # type: ignore[override]
+        return int(self.i.shape[0])
+
+
+class ViewPairs(NamedTuple):
+    """Sample pairs, their distance and the two views (code positions) that gave it; by (i, j)."""
+
+    i: np.ndarray
+    j: np.ndarray
+    distance: np.ndarray
+    view_i: np.ndarray
+    view_j: np.ndarray
+
+    def __len__(self) -> int:  # type: ignore[override]
+        return int(self.i.shape[0])
+
+
+def _empty_pairs(dist_dtype: Any = np.int16) -> Pairs:
+    return Pairs(np.empty(0, np.int64), np.empty(0, np.int64), np.empty(0, dist_dtype))
+
+
+def _sorted_pairs(i: np.ndarray, j: np.ndarray, d: np.ndarray) -> Pairs:
+    order = np.lexsort((j, i))
+    return Pairs(i[order].astype(np.int64), j[order].astype(np.int64), d[order])
+
+
+def check_radius(radius: int) -> int:
+    """The radius as an int; ValueError outside 0..64."""
+    r = int(radius)
+    if r < 0 or r > BITS:
+        raise ValueError(f"radius must be within 0..{BITS}, got {radius}")
+    return r
+
+
+def as_codes(codes: Any) -> np.ndarray:
+    """A flat contiguous uint64 array (signed int64 input is reinterpreted bit for bit)."""
+    c = np.ascontiguousarray(np.asarray(codes).ravel())
+    if c.dtype != np.uint64:
+        if c.dtype.kind == "i" and c.size and c.min() < 0:
+            c = c.view(np.uint64) if c.dtype.itemsize == 8 else c.astype(np.int64).view(np.uint64)
+        else:
+            c = c.astype(np.uint64)
+    return c
+
+
+# --------------------------------------------------------------------------- distances
+
+
+def hamming(a: Any, b: Any) -> np.ndarray:
+    """Element-wise Hamming distance of uint64 codes (numpy broadcasting)."""
+    return mih.popcount_distance(np.asarray(a, dtype=np.uint64), np.asarray(b, dtype=np.uint64))
+
+
+def _rows(x: Any) -> np.ndarray:
+    x = np.asarray(x, dtype=np.uint64)
+    return x[:, None] if x.ndim == 1 else x
+
+
+def _allowed(k_a: int, k_b: int, identity: int | None) -> np.ndarray:
+    """(k_a, k_b) mask of the view pairs the distance is taken over."""
+    if identity is None:
+        return np.ones((k_a, k_b), dtype=bool)
+    return (np.arange(k_a)[:, None] < identity) | (np.arange(k_b)[None, :] < identity)
+
+
+def view_distances(a2d: Any, b2d: Any, identity: int | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Row-wise sample distance of two (n, K) arrays, and the views of a and b that gave it.
+
+    ``identity``: how many leading views are untransformed (None: all). Of equally close view
+    pairs the first identity pair wins, else the first pair (row-major order).
+    """
+    a, b = _rows(a2d), _rows(b2d)
+    ka, kb = a.shape[1], b.shape[1]
+    allowed = _allowed(ka, kb, identity).ravel()
+    ident_a = np.arange(ka) < (ka if identity is None else identity)
+    ident_b = np.arange(kb) < (kb if identity is None else identity)
+    both_identity = (ident_a[:, None] & ident_b[None, :]).ravel()
+    d = hamming(a[:, :, None], b[:, None, :]).reshape(a.shape[0], ka * kb)
+    key = np.where(allowed, 2 * d + (~both_identity), 4 * BITS)
+    best = np.argmin(key, axis=1)
+    va, vb = np.divmod(best, kb)
+    return d[np.arange(d.shape[0]), best], va.astype(np.int16), vb.astype(np.int16)
+
+
+def min_distance(a: Any, b: Any, identity: int | None = None) -> int:
+    """Distance of two samples' codes (1-D arrays): the closest allowed view pair."""
+    return int(view_distances(np.asarray(a).ravel()[None, :], np.asarray(b).ravel()[None, :], identity)[0][0])
+
+
+def min_distances(a2d: Any, b2d: Any, identity: int | None = None) -> np.ndarray:
+    """Row-wise ``min_distance`` of two (n, K) code arrays."""
+    return view_distances(a2d, b2d, identity)[0]
+
+
+# --------------------------------------------------------------------------- single codes
+
+
+def brute_pairs(codes: Any, radius: int) -> Pairs:
+    """Quadratic reference: every pair i < j with distance <= radius."""
+    c = as_codes(codes)
+    return _sorted_pairs(*mih.brute_join(c, None, check_radius(radius)))
+
+
+def brute_cross_pairs(codes_a: Any, codes_b: Any, radius: int) -> Pairs:
+    """Quadratic reference: every (i in a, j in b) with distance <= radius."""
+    return _sorted_pairs(*mih.brute_join(as_codes(codes_a), as_codes(codes_b), check_radius(radius)))
+
+
+def _members(inv: np.ndarray, n_unique: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Original positions grouped by unique code: (order, starts, counts)."""
+    order = np.argsort(inv, kind="stable")
+    counts = np.bincount(inv, minlength=n_unique).astype(np.int64)
+    starts = np.cumsum(counts) - counts
+    return order, starts, counts
+
+
+def _expand_members(ua, ub, d, mem_a, mem_b) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Unique-code pairs -> pairs of original positions (every member of one x every member of the other)."""
+    oa, sa, ca = mem_a
+    ob, sb, cb = mem_b
+    x, y, src = mih._expand(sa[ua], ca[ua], sb[ub], cb[ub])
+    return oa[x], ob[y], d[src]
+
+
+def _same_code_pairs(mem) -> tuple[np.ndarray, np.ndarray]:
+    """Every pair i < j of original positions that hold the same code."""
+    order, starts, counts = mem
+    multi = np.flatnonzero(counts >= 2)
+    if multi.shape[0] == 0:
+        return np.empty(0, np.int64), np.empty(0, np.int64)
+    x, y, _ = mih._expand(starts[multi], counts[multi], starts[multi], counts[multi])
+    keep = x < y
+    a, b = order[x[keep]], order[y[keep]]
+    return np.minimum(a, b), np.maximum(a, b)
+
+
+def range_pairs(codes: Any, radius: int, substrings: int | None = None, threads: int = 1) -> Pairs:
+    """Every pair i < j of ``codes`` within ``radius`` bits; exact (equals ``brute_pairs``).
+
+    ``substrings``: multi-index tables (None: chosen by cost; 0: quadratic scan). ``threads``: tables
+    searched side by side.
+    """
+    c = as_codes(codes)
+    r = check_radius(radius)
+    u, inv = np.unique(c, return_inverse=True)
+    mem = _members(inv.ravel(), u.shape[0])
+    ui, uj, ud = mih.unique_join(u, None, r, substrings, threads)
+    i1, j1, d1 = _expand_members(ui, uj, ud, mem, mem)
+    i0, j0 = _same_code_pairs(mem)
+    i = np.concatenate([np.minimum(i1, j1), i0])
+    j = np.concatenate([np.maximum(i1, j1), j0])
+    d = np.concatenate([d1, np.zeros(i0.shape[0], np.int16)])
+    return _sorted_pairs(i, j, d)
+
+
+def unique_cross(ua: np.ndarray, ub: np.ndarray, radius: int, substrings: int | None = None,
+                 threads: int = 1) -> mih.Join:
+    """Exact pairs of two arrays of distinct codes; the larger one is indexed."""
+    if ua.shape[0] <= ub.shape[0]:
+        return mih.unique_join(ua, ub, radius, substrings, threads)
+    j, i, d = mih.unique_join(ub, ua, radius, substrings, threads)
+    return i, j, d
+
+
+def cross_pairs(codes_a: Any, codes_b: Any, radius: int, substrings: int | None = None, threads: int = 1) -> Pairs:
+    """Every (i, j), i indexing ``codes_a`` and j ``codes_b``, within ``radius`` bits; exact."""
+    a, b = as_codes(codes_a), as_codes(codes_b)
+    r = check_radius(radius)
+    ua, inv_a = np.unique(a, return_inverse=True)
+    ub, inv_b = np.unique(b, return_inverse=True)
+    mem_a, mem_b = _members(inv_a.ravel(), ua.shape[0]), _members(inv_b.ravel(), ub.shape[0])
+    pi, pj, d = unique_cross(ua, ub, r, substrings, threads)
+    i, j, d = _expand_members(pi, pj, d, mem_a, mem_b)
+    return _sorted_pairs(i, j, d)
+
+
+# --------------------------------------------------------------------------- samples
+
+
+def _flatten(codes2d: np.ndarray, first_view: int = 0) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(flat codes, owning row, view number) of an (n, k) block whose first column is view first_view."""
+    n, k = codes2d.shape
+    flat = as_codes(codes2d.reshape(-1))
+    owner = np.repeat(np.arange(n, dtype=np.int64), k)
+    view = np.tile(np.arange(first_view, first_view + k, dtype=np.int16), n)
+    return flat, owner, view
+
+
+def _split_views(codes2d: Any, identity: int | None) -> tuple[np.ndarray, np.ndarray, int]:
+    c = _rows(codes2d)
+    k = c.shape[1]
+    ident = k if identity is None else int(identity)
+    if not 1 <= ident <= k:
+        raise ValueError(f"identity views must be within 1..{k}, got {identity}")
+    return c[:, :ident], c[:, ident:], ident
+
+
+def _best_per_pair(i, j, d, vi, vj, ident: int) -> ViewPairs:
+    """One row per (i, j): the smallest distance; ties to an identity pair, then the first views."""
+    if i.shape[0] == 0:
+        e = np.empty(0, np.int64)
+        return ViewPairs(e, e, np.empty(0, np.int16), np.empty(0, np.int16), np.empty(0, np.int16))
+    transformed = (vi >= ident) | (vj >= ident)
+    order = np.lexsort((vj, vi, transformed, d, j, i))
+    i, j, d, vi, vj = i[order], j[order], d[order], vi[order], vj[order]
+    first = np.concatenate(([True], (i[1:] != i[:-1]) | (j[1:] != j[:-1])))
+    return ViewPairs(i[first].astype(np.int64), j[first].astype(np.int64), d[first].astype(np.int16),
+                     vi[first].astype(np.int16), vj[first].astype(np.int16))
+
+
+def sample_pairs(codes2d: Any, radius: int, identity: int | None = None, substrings: int | None = None,
+                 threads: int = 1) -> ViewPairs:
+    """Every pair of rows i < j within ``radius`` by the sample distance (see the module); exact.
+
+    ``identity``: how many leading columns are untransformed views (None: all of them).
+    """
+    r = check_radius(radius)
+    ids, trs, ident = _split_views(codes2d, identity)
+    fi, oi, vi = _flatten(ids)
+    p = range_pairs(fi, r, substrings, threads)
+    parts = [(oi[p.i], oi[p.j], p.distance, vi[p.i], vi[p.j])]
+    if trs.shape[1]:
+        ft, ot, vt = _flatten(trs, ident)
+        q = cross_pairs(fi, ft, r, substrings, threads)
+        parts.append((oi[q.i], ot[q.j], q.distance, vi[q.i], vt[q.j]))
+    a, b, d, va, vb = (np.concatenate(x) for x in zip(*parts))
+    keep = a != b
+    a, b, d, va, vb = a[keep], b[keep], d[keep], va[keep], vb[keep]
+    swap = a > b
+    return _best_per_pair(np.where(swap, b, a), np.where(swap, a, b), d, np.where(swap, vb, va),
+                          np.where(swap, va, vb), ident)
+
+
+def sample_cross_pairs(codes2d_a: Any, codes2d_b: Any, radius: int, identity: int | None = None,
+                       substrings: int | None = None, threads: int = 1) -> ViewPairs:
+    """Every (row of a, row of b) within ``radius`` by the sample distance; exact."""
+    r = check_radius(radius)
+    a_id, a_tr, ident = _split_views(codes2d_a, identity)
+    b_id, b_tr, ident_b = _split_views(codes2d_b, identity)
+    if ident_b != ident or a_tr.shape[1] != b_tr.shape[1]:
+        raise ValueError("both sets must hold the same views")
+    fa, oa, va = _flatten(a_id)
+    fb_all, ob_all, vb_all = _flatten(_rows(codes2d_b))
+    p = cross_pairs(fa, fb_all, r, substrings, threads)
+    parts = [(oa[p.i], ob_all[p.j], p.distance, va[p.i], vb_all[p.j])]
+    if a_tr.shape[1]:
+        ft, ot, vt = _flatten(a_tr, ident)
+        fb, ob, vb = _flatten(b_id)
+        q = cross_pairs(ft, fb, r, substrings, threads)
+        parts.append((ot[q.i], ob[q.j], q.distance, vt[q.i], vb[q.j]))
+    a, b, d, x, y = (np.concatenate(v) for v in zip(*parts))
+    return _best_per_pair(a, b, d, x, y, ident)
+
+
+# --------------------------------------------------------------------------- code graph
+
+
+class CodeGraph(NamedTuple):
+    """Links between samples through their distinct identity codes ("tokens").
+
+    Samples s and t are within the radius exactly when one of them owns a token that the other
+    owns, or that is within the radius of one the other owns (an edge), or when a transformed view
+    of one is within the radius of a token the other owns (a reach). Built without listing sample
+    pairs, so a picture held by many samples costs one token, not a quadratic number of pairs.
+    """
+
+    tokens: int  # number of distinct identity codes
+    own_s: np.ndarray  # sample s owns token own_u (unique pairs)
+    own_u: np.ndarray
+    reach_s: np.ndarray  # a transformed view of sample reach_s is within the radius of token reach_u
+    reach_u: np.ndarray
+    edge_u: np.ndarray  # distinct tokens within the radius of each other, edge_u < edge_v
+    edge_v: np.ndarray
+
+
+def _unique_pairs(s: np.ndarray, u: np.ndarray, n_u: int) -> tuple[np.ndarray, np.ndarray]:
+    key = np.unique(s.astype(np.int64) * max(n_u, 1) + u.astype(np.int64))
+    return key // max(n_u, 1), key % max(n_u, 1)
+
+
+def code_graph(codes2d: Any, radius: int, identity: int | None = None, substrings: int | None = None,
+               threads: int = 1) -> CodeGraph:
+    """The ``CodeGraph`` of (n, K) sample codes at ``radius``; exact (multi-index search)."""
+    r = check_radius(radius)
+    ids, trs, _ = _split_views(codes2d, identity)
+    fi, oi, _ = _flatten(ids)
+    tok, inv = np.unique(fi, return_inverse=True)
+    own_s, own_u = _unique_pairs(oi, inv.ravel(), tok.shape[0])
+    eu, ev, _ = mih.unique_join(tok, None, r, substrings, threads)
+    eu, ev = np.minimum(eu, ev), np.maximum(eu, ev)
+    reach_s = reach_u = np.empty(0, np.int64)
+    if trs.shape[1]:
+        ft, ot, _ = _flatten(trs)
+        ttok, tinv = np.unique(ft, return_inverse=True)
+        ti, tu, _ = unique_cross(ttok, tok, r, substrings, threads)
+        order, starts, counts = _members(tinv.ravel(), ttok.shape[0])
+        # Every sample holding a transformed token reaches the identity tokens near it.
+        per = counts[ti]
+        src = np.repeat(np.arange(ti.shape[0]), per)
+        pos = np.repeat(starts[ti], per) + (np.arange(src.shape[0]) - np.repeat(np.cumsum(per) - per, per))
+        reach_s, reach_u = _unique_pairs(ot[order[pos]], tu[src], tok.shape[0])
+    return CodeGraph(int(tok.shape[0]), own_s, own_u, reach_s, reach_u, eu.astype(np.int64), ev.astype(np.int64))
