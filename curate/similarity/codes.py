@@ -1,7 +1,7 @@
 """Perceptual codes: 64-bit hashes of several views of one picture.
 
-A view is one crop box of the picture after one transform (the picture itself, its mirror image,
-a quarter turn, ...). A sample's codes are laid out identity views first, then each transform's
+A view is one crop box of the picture, corners masked, then one transform of that crop (none,
+the mirror image, a quarter turn, ...). A sample's codes are laid out identity views first, then each transform's
 views in the order the settings list them, so ``views(settings)[k]`` describes code ``k``.
 """
 from __future__ import annotations
@@ -81,7 +81,7 @@ class CodeSettings:
 
 
 class View(NamedTuple):
-    """One code's view: the transform applied first, then the crop box (shares of each side)."""
+    """One code's view: a crop box of the picture (shares of each side), then a transform of the crop."""
 
     transform: str
     box: tuple[float, float, float, float]
@@ -101,11 +101,22 @@ def crop_boxes(scales: Sequence[float] = (1.0, 0.92, 0.84), side_scale: float = 
     return out
 
 
+_WHOLE = (0.0, 0.0, 1.0, 1.0)
+
+
+def _view_boxes(settings: CodeSettings) -> list[tuple[float, float, float, float]]:
+    """The identity boxes; with transform_boxes "whole" the whole picture comes first."""
+    boxes = crop_boxes(settings.scales, settings.side_scale)
+    if settings.transform_boxes == "whole" and boxes[0] != _WHOLE:
+        boxes = [_WHOLE] + [b for b in boxes if b != _WHOLE]
+    return boxes
+
+
 def views(settings: CodeSettings) -> list[View]:
     """Every code's view, in code order: identity views first, then each transform's."""
-    boxes = crop_boxes(settings.scales, settings.side_scale)
+    boxes = _view_boxes(settings)
     out = [View("identity", b) for b in boxes]
-    t_boxes = boxes if settings.transform_boxes == "all" else [(0.0, 0.0, 1.0, 1.0)]
+    t_boxes = boxes if settings.transform_boxes == "all" else boxes[:1]
     for t in settings.transforms:
         out += [View(t, b) for b in t_boxes]
     return out
@@ -113,7 +124,7 @@ def views(settings: CodeSettings) -> list[View]:
 
 def identity_count(settings: CodeSettings) -> int:
     """How many leading codes are views of the untransformed picture."""
-    return len(crop_boxes(settings.scales, settings.side_scale))
+    return len(_view_boxes(settings))
 
 
 def code_count(settings: CodeSettings) -> int:
@@ -161,46 +172,85 @@ def _work_picture(img: Any, work_size: int) -> Any:
     return grey
 
 
-def _box_codes(view: Any, boxes: Sequence[tuple[float, float, float, float]], corner_mask: float, fn: Any) -> list[int]:
-    """One code per crop box of one (transformed) grey picture."""
+# Transforms of a thumbnail array (rows = y): the numpy twins of the Pillow methods in TRANSFORMS.
+_ARRAY_OPS = {
+    "mirror": lambda a: a[:, ::-1],
+    "rot90": lambda a: np.rot90(a, 1),
+    "rot180": lambda a: np.rot90(a, 2),
+    "rot270": lambda a: np.rot90(a, 3),
+    "mirror_rot90": lambda a: np.rot90(a, 1)[:, ::-1],
+    "mirror_rot180": lambda a: a[::-1, :],
+    "mirror_rot270": lambda a: np.rot90(a, 3)[:, ::-1],
+}
+# imagehash.phash's DCT input side (hash_size 8 x highfreq_factor 4) and hash side.
+_PHASH_IN, _PHASH_SIDE = 32, 8
+
+
+def _crops(grey: Any, boxes: Sequence[tuple[float, float, float, float]], corner_mask: float) -> list[Any]:
+    """The crop of each box of a grey picture, corners masked, as Pillow images."""
     from PIL import Image
 
-    w, h = view.size
-    arr = np.asarray(view) if corner_mask else None
+    w, h = grey.size
+    arr = np.asarray(grey) if corner_mask else None
     out = []
     for x0, y0, x1, y1 in boxes:
         px = (int(round(x0 * w)), int(round(y0 * h)), max(int(round(x1 * w)), int(round(x0 * w)) + 1),
               max(int(round(y1 * h)), int(round(y0 * h)) + 1))
         if arr is not None:
             part = mask_corners(arr[px[1] : px[3], px[0] : px[2]], corner_mask)
-            crop = Image.fromarray(np.clip(part + 0.5, 0, 255).astype(np.uint8), "L")
+            out.append(Image.fromarray(np.clip(part + 0.5, 0, 255).astype(np.uint8), "L"))
         else:
-            crop = view if px == (0, 0, w, h) else view.crop(px)
-        out.append(code_of(fn(crop)))
+            out.append(grey if px == (0, 0, w, h) else grey.crop(px))
     return out
+
+
+def phash_codes(thumbs: np.ndarray) -> np.ndarray:
+    """imagehash.phash of a stack of 32x32 grey thumbnails (n, 32, 32), as uint64 codes: DCT of
+    rows and columns, the 8x8 lowest frequencies against their median, first bit most significant."""
+    import scipy.fftpack
+
+    dct = scipy.fftpack.dct(scipy.fftpack.dct(thumbs, axis=1), axis=2)
+    low = dct[:, :_PHASH_SIDE, :_PHASH_SIDE].reshape(thumbs.shape[0], -1)
+    bits = low > np.median(low, axis=1, keepdims=True)
+    return np.packbits(bits, axis=1).view(">u8").ravel().astype(np.uint64)
+
+
+def _phash_views(crops: list[Any], transforms: Sequence[str], t_count: int) -> np.ndarray:
+    """pHash of every crop, then of each transform of the first t_count crops (on the thumbnail)."""
+    from PIL import Image
+
+    thumbs = np.stack([np.asarray(c.resize((_PHASH_IN, _PHASH_IN), Image.Resampling.LANCZOS)) for c in crops])
+    stack = [thumbs] + [np.stack([_ARRAY_OPS[t](a) for a in thumbs[:t_count]]) for t in transforms]
+    return phash_codes(np.ascontiguousarray(np.concatenate(stack)))
+
+
+def _dhash_views(crops: list[Any], transforms: Sequence[str], t_count: int) -> np.ndarray:
+    """imagehash.dhash of every crop, then of each transform of the first t_count crops."""
+    import imagehash
+    from PIL import Image
+
+    out = [code_of(imagehash.dhash(c)) for c in crops]
+    for t in transforms:
+        out += [code_of(imagehash.dhash(c.transpose(getattr(Image.Transpose, TRANSFORMS[t])))) for c in crops[:t_count]]
+    return np.array(out, dtype=np.uint64)
 
 
 def image_codes(img: Any, settings: CodeSettings | None = None) -> np.ndarray:
     """uint64 codes of every view of one Pillow image, in ``views(settings)`` order.
 
-    The picture goes to grey and (``work_size`` > 0) to a square, is transformed, cut into crop
-    boxes whose corners are masked, and each crop is hashed with imagehash. With scales=[1.0],
-    side_scale=0, corner_mask=0, transforms=[], work_size=0 the one code is imagehash's own hash.
+    The picture goes to grey and (``work_size`` > 0) to a square, is cut into crop boxes whose
+    corners are masked, and each crop is hashed as imagehash does, then each transform of it.
+    With scales=[1.0], side_scale=0, corner_mask=0, transforms=[], work_size=0 the one code is
+    imagehash's own hash of the picture.
     """
-    import imagehash
-    from PIL import Image
-
     s = settings or CodeSettings()
     s.validate()
-    fn = imagehash.phash if s.kind == "phash" else imagehash.dhash
     grey = _work_picture(img, s.work_size)
-    boxes = crop_boxes(s.scales, s.side_scale)
-    t_boxes = boxes if s.transform_boxes == "all" else [(0.0, 0.0, 1.0, 1.0)]
-    out = _box_codes(grey, boxes, s.corner_mask, fn)
-    for t in s.transforms:
-        turned = grey.transpose(getattr(Image.Transpose, TRANSFORMS[t]))
-        out += _box_codes(turned, t_boxes, s.corner_mask, fn)
-    return np.array(out, dtype=np.uint64)
+    boxes = _view_boxes(s)
+    crops = _crops(grey, boxes, s.corner_mask)
+    t_count = len(boxes) if s.transform_boxes == "all" else 1
+    fn = _phash_views if s.kind == "phash" else _dhash_views
+    return fn(crops, s.transforms, t_count)
 
 
 def matched_transform(view_list: Sequence[View], kept_view: int, member_view: int) -> str:
