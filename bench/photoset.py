@@ -4,7 +4,7 @@ The photos come from scikit-image (`skimage.data`), scikit-learn (`load_sample_i
 matplotlib's sample data, so the near-duplicate quality checks run offline on pictures nobody here
 made. Every variant is written to bytes and decoded back exactly as the pipeline's inspect stage
 decodes (JPEG draft mode included), so the hashes seen here are the hashes a run would see.
-Used by bench/neardup_quality.py and tests/test_neardup.py.
+Used by bench/neardup_quality.py, tests/test_neardup.py and tests/test_neardup_adversarial.py.
 """
 from __future__ import annotations
 
@@ -178,6 +178,56 @@ TRANSFORMS: dict[str, dict[str, Callable[[Image.Image, random.Random], bytes]]] 
     },
     "stamp": {"stamp_box_12": _stamp("box", 0.12), "stamp_box_18": _stamp("box", 0.18), "watermark_text": _stamp("text", 0.2)},
 }
+
+
+def _transpose(method: str, then: Callable[[Image.Image, random.Random], bytes] | None = None):
+    """A mirrored or turned copy (Pillow's Image.transpose; turns are counter-clockwise)."""
+
+    def edit(img: Image.Image, rng: random.Random) -> bytes:
+        out = img.transpose(getattr(Image.Transpose, method))
+        return then(out, rng) if then else _encode(out, "PNG")
+
+    return edit
+
+
+def _crop_share(share: float, mode: str) -> Callable[[Image.Image, random.Random], bytes]:
+    """Cut ``share`` of each side: 'centre' half from each end, 'one' all from one random edge."""
+
+    def edit(img: Image.Image, rng: random.Random) -> bytes:
+        w, h = img.size
+        if mode == "centre":
+            fr = [share / 2] * 4
+        else:
+            fr = [0.0] * 4
+            fr[rng.randrange(4)] = share
+        box = (round(w * fr[0]), round(h * fr[1]), w - round(w * fr[2]), h - round(h * fr[3]))
+        return _encode(img.crop(box), "PNG")
+
+    return edit
+
+
+# Edits the default views do not cover, measured on their own (bench/neardup_quality.py): mirror
+# images, quarter and half turns, and crops of 10-30% of a side. Kept apart from TRANSFORMS, whose
+# every edit the pipeline's defaults are held to.
+HARD_EDITS: dict[str, dict[str, Callable[[Image.Image, random.Random], bytes]]] = {
+    "mirror": {"mirror": _transpose("FLIP_LEFT_RIGHT"),
+               "mirror_jpeg_q40": _transpose("FLIP_LEFT_RIGHT", _jpeg(40)),
+               "mirror_crop_one_8": _transpose("FLIP_LEFT_RIGHT", _crop(0.08, "one"))},
+    "turn": {"rot90": _transpose("ROTATE_90"), "rot180": _transpose("ROTATE_180"),
+             "rot270": _transpose("ROTATE_270")},
+    "crop_centre": {f"crop_centre_{p}": _crop_share(p / 100, "centre") for p in (10, 20, 30)},
+    "crop_one": {f"crop_one_{p}": _crop_share(p / 100, "one") for p in (10, 20, 30)},
+}
+
+
+def hard_variants(name: str, img: Image.Image, seed: int = 0) -> list[tuple[str, str, bytes]]:
+    """(family, edit, bytes) for every edit of HARD_EDITS; deterministic per photo name and seed."""
+    out = []
+    for fam, edits in HARD_EDITS.items():
+        for ename, fn in edits.items():
+            rng = random.Random(f"{seed}:{name}:{ename}")
+            out.append((fam, ename, fn(img, rng)))
+    return out
 
 
 def original_bytes(img: Image.Image) -> bytes:
