@@ -1,11 +1,12 @@
 """Near-duplicate grouping at scale: exact code search + leader groups on synthetic 64-bit codes.
 
-N samples with V identity views and T transformed views each (default 1 and 0: N codes). Views
-of one sample differ by about 14 bits (the median between crop views of the public photos in
-bench/photoset.py); a tenth of the samples are replaced by copies of others with 0..radius+2 bits
-flipped per view (some just past the radius, so the boundary is tested), and with T > 0 half of
-those copies are "mirrored": their identity views are the source's transformed views and back.
-Every sample gets a random keeper rank.
+N samples with V identity views and T transformed views each (default 1 and 0: N codes), and a
+check code per view (as the default code settings make; --no-check: none). Views of one sample
+differ by about 14 bits (the median between crop views of the public photos in bench/photoset.py);
+a tenth of the samples are replaced by copies of others with 0..radius+2 bits flipped per view
+(some just past the radius, so the boundary is tested) and 0..check_radius+4 per check code, and
+with T > 0 half of those copies are "mirrored": their identity views are the source's transformed
+views and back. Every sample gets a random keeper rank.
 
 Timed: ``curate.similarity.group`` (code graph by multi-index search, then greedy leaders).
 ``exact`` checks the groups against brute force for a sample of rows: every distance from the row
@@ -38,6 +39,7 @@ from curate import similarity  # noqa: E402
 from curate.similarity import hamming  # noqa: E402
 
 RADIUS = 8  # neardup's default radius (bits of 64)
+CHECK_RADIUS = 20  # the default check radius (bits of 64)
 VIEW_FLIPS = 14  # bits between two views of one sample (median over the public photos' crop views)
 
 
@@ -50,8 +52,9 @@ def _flip(codes: np.ndarray, nbits: np.ndarray, rng: np.random.Generator) -> np.
     return codes ^ flips
 
 
-def synthetic_codes(n: int, views: int, transformed: int, radius: int, seed: int) -> np.ndarray:
-    """(n, views + transformed) codes with planted copies (see the module docstring)."""
+def synthetic_codes(n: int, views: int, transformed: int, radius: int, check_radius: int | None,
+                    seed: int) -> tuple[np.ndarray, np.ndarray | None]:
+    """(n, views + transformed) codes and check codes with planted copies (see the module docstring)."""
     rng = np.random.default_rng(seed)
     base = rng.integers(0, np.iinfo(np.uint64).max, size=(n, 1), dtype=np.uint64, endpoint=True)
     ident = np.repeat(base, views, axis=1)
@@ -59,26 +62,31 @@ def synthetic_codes(n: int, views: int, transformed: int, radius: int, seed: int
         ident[:, 1:] = _flip(ident[:, 1:], np.full((n, views - 1), VIEW_FLIPS), rng)
     trans = rng.integers(0, np.iinfo(np.uint64).max, size=(n, transformed), dtype=np.uint64, endpoint=True)
     codes = np.concatenate([ident, trans], axis=1)
+    checks = None
+    if check_radius is not None:
+        checks = rng.integers(0, np.iinfo(np.uint64).max, size=codes.shape, dtype=np.uint64, endpoint=True)
     k = n // 10
     src, dst = rng.integers(0, n, k), rng.integers(0, n, k)
-    want = rng.integers(0, radius + 3, (k, 1))
-    copy = codes[src]
+    perm = np.arange(codes.shape[1])
+    mirrored = np.zeros(k, bool)
     if transformed:
         mirrored = rng.random(k) < 0.5
         t = min(views, transformed)
-        swapped = copy.copy()
-        swapped[:, :t], swapped[:, views : views + t] = copy[:, views : views + t], copy[:, :t]
-        copy = np.where(mirrored[:, None], swapped, copy)
-    codes[dst] = _flip(copy, np.broadcast_to(want, copy.shape), rng)
-    return codes
+        perm[:t], perm[views : views + t] = np.arange(views, views + t), np.arange(t)
+    copy = np.where(mirrored[:, None], codes[src][:, perm], codes[src])
+    codes[dst] = _flip(copy, np.broadcast_to(rng.integers(0, radius + 3, (k, 1)), copy.shape), rng)
+    if checks is not None:
+        ccopy = np.where(mirrored[:, None], checks[src][:, perm], checks[src])
+        checks[dst] = _flip(ccopy, np.broadcast_to(rng.integers(0, check_radius + 5, (k, 1)), ccopy.shape), rng)
+    return codes, checks
 
 
 def peak_rss_mb() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
 
 
-def check_groups(codes: np.ndarray, ident: int | None, rank: np.ndarray, g: similarity.Groups, radius: int,
-                 queries: np.ndarray) -> tuple[bool, float]:
+def check_groups(codes: np.ndarray, checks: np.ndarray | None, cr: int, ident: int | None, rank: np.ndarray,
+                 g: similarity.Groups, radius: int, queries: np.ndarray) -> tuple[bool, float]:
     """The leader rule checked by brute force at each query row; (all hold, seconds)."""
     t = time.perf_counter()
     ok = True
@@ -86,8 +94,11 @@ def check_groups(codes: np.ndarray, ident: int | None, rank: np.ndarray, g: simi
     pos[np.lexsort((np.arange(rank.shape[0]), rank))] = np.arange(rank.shape[0])
     is_leader = g.leader == np.arange(rank.shape[0])
     for q in queries.tolist():
-        d = np.concatenate([hamming.min_distances(np.broadcast_to(codes[q], codes[s : s + 1 << 20].shape),
-                                                  codes[s : s + 1 << 20], ident) for s in range(0, codes.shape[0], 1 << 20)])
+        d = np.concatenate([
+            hamming.min_distances(np.broadcast_to(codes[q], codes[s : s + 1 << 20].shape), codes[s : s + 1 << 20], ident,
+                                  None if checks is None else np.broadcast_to(checks[q], checks[s : s + 1 << 20].shape),
+                                  None if checks is None else checks[s : s + 1 << 20], cr)
+            for s in range(0, codes.shape[0], 1 << 20)])
         near = np.flatnonzero(d <= radius)
         near = near[near != q]
         lower = near[is_leader[near] & (pos[near] < pos[q])]
@@ -129,16 +140,17 @@ def faiss_multihash(codes: np.ndarray, radius: int, nhash: int, nflip: int) -> t
     return seconds, set(zip(qi[keep].tolist(), ids[keep].tolist()))
 
 
-def compare(codes: np.ndarray, ident: int | None, radius: int, threads: int) -> dict:
+def compare(codes: np.ndarray, checks: np.ndarray | None, cr: int, ident: int | None, radius: int,
+            threads: int) -> dict:
     """Pair search alone and union-find components over the same codes, timed in this run."""
     t = time.perf_counter()
-    if codes.shape[1] == 1:
+    if codes.shape[1] == 1 and checks is None:
         p = similarity.range_pairs(codes[:, 0], radius, threads=threads)
     else:
-        p = similarity.sample_pairs(codes, radius, ident, threads=threads)
+        p = similarity.sample_pairs(codes, radius, ident, checks, cr, threads=threads)
     search_s = time.perf_counter() - t
     t = time.perf_counter()
-    similarity.sample_components(codes, radius, ident, threads=threads)
+    similarity.sample_components(codes, radius, ident, checks, cr, threads=threads)
     return {"search_only_seconds": round(search_s, 2), "components_seconds": round(time.perf_counter() - t, 2),
             "sample_pairs": len(p)}
 
@@ -150,6 +162,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--transformed", type=int, default=0, help="transformed views per sample")
     ap.add_argument("--all-pairs", action="store_true", help="compare every view pair (no identity side)")
     ap.add_argument("--radius", type=int, default=RADIUS, help="Hamming radius (default: neardup's)")
+    ap.add_argument("--check-radius", type=int, default=CHECK_RADIUS, help="radius of the check codes")
+    ap.add_argument("--no-check", action="store_true", help="no check codes")
     ap.add_argument("--threads", type=int, default=2, help="substring tables searched side by side")
     ap.add_argument("--seed", type=int, default=0)
     ap.add_argument("--check", type=int, default=0, help="rows checked against brute force (0: auto)")
@@ -159,12 +173,14 @@ def main(argv: list[str] | None = None) -> int:
     args = ap.parse_args(argv)
 
     n, r = args.n, args.radius
-    codes = synthetic_codes(n, args.views, args.transformed, r, args.seed)
+    cr = 64 if args.no_check else args.check_radius
+    codes, checks = synthetic_codes(n, args.views, args.transformed, r, None if args.no_check else cr, args.seed)
     ident = None if args.all_pairs or not args.transformed else args.views
     rank = np.random.default_rng(args.seed + 2).permutation(n)
     rss_before = peak_rss_mb()
     t = time.perf_counter()
-    g = similarity.group(rank, similarity.Signals(codes=codes, identity=ident, radius=r), threads=args.threads)
+    sig = similarity.Signals(codes=codes, identity=ident, radius=r, checks=checks, check_radius=cr)
+    g = similarity.group(rank, sig, threads=args.threads)
     seconds = time.perf_counter() - t
     rss_search = peak_rss_mb()
 
@@ -175,14 +191,14 @@ def main(argv: list[str] | None = None) -> int:
     grouped = np.flatnonzero(g.sizes() > 1)
     queries = np.unique(np.concatenate([rng.choice(n, min(n, nq // 2), replace=False),
                                         rng.choice(grouped, min(nq - nq // 2, grouped.shape[0]), replace=False)]))
-    exact, check_s = check_groups(codes, ident, rank, g, r, queries)
+    exact, check_s = check_groups(codes, checks, cr, ident, rank, g, r, queries)
     numpy_rate = queries.shape[0] * n * allowed / check_s
     faiss_rate = faiss_flat_rate(codes.reshape(-1), r, max(10, min(200, int(2e9 / (n * k)))))
     brute_s = n * (n - 1) / 2 * allowed / max(numpy_rate, faiss_rate or 0.0)
     members = g.leader != np.arange(n)
     result = {
         "n": n, "codes_per_sample": k, "identity_views": ident if ident is not None else k, "codes": n * k,
-        "radius": r, "threads": args.threads, "seconds": round(seconds, 2), "exact": bool(exact),
+        "check_codes": checks is not None, "radius": r, "check_radius": cr, "threads": args.threads, "seconds": round(seconds, 2), "exact": bool(exact),
         "checked_rows": int(queries.shape[0]), "brute_force_seconds": round(brute_s, 1),
         "brute_force_estimated": True, "speedup": round(brute_s / max(seconds, 1e-9), 1),
         "groups_of_2_plus": int(np.unique(g.leader[members]).shape[0]), "members": int(members.sum()),
@@ -190,7 +206,7 @@ def main(argv: list[str] | None = None) -> int:
         "peak_rss_mb": round(rss_search, 1), "rss_before_search_mb": round(rss_before, 1),
     }
     if args.compare:
-        result.update(compare(codes, ident, r, args.threads))
+        result.update(compare(codes, checks, cr, ident, r, args.threads))
     if args.faiss and k == 1:
         ref = similarity.range_pairs(codes[:, 0], r, threads=args.threads)
         want = set(zip(ref.i.tolist(), ref.j.tolist()))
@@ -201,7 +217,8 @@ def main(argv: list[str] | None = None) -> int:
     if args.json:
         print(json.dumps(result))
     else:
-        print(f"{n:,} samples x {k} codes ({result['identity_views']} identity), radius {r}: {seconds:.1f} s for "
+        print(f"{n:,} samples x {k} codes ({result['identity_views']} identity, check codes: {checks is not None}), "
+              f"radius {r}: {seconds:.1f} s for "
               f"groups on {args.threads} threads, {result['members']:,} members in {result['groups_of_2_plus']:,} groups, "
               f"{g.rounds} rounds; exact vs brute force on {result['checked_rows']:,} rows: {exact}")
         print(f"brute force (estimated) {brute_s:,.0f} s -> {result['speedup']}x faster; peak RSS {rss_search:,.0f} MB")

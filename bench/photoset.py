@@ -180,53 +180,58 @@ TRANSFORMS: dict[str, dict[str, Callable[[Image.Image, random.Random], bytes]]] 
 }
 
 
-def _transpose(method: str, then: Callable[[Image.Image, random.Random], bytes] | None = None):
-    """A mirrored or turned copy (Pillow's Image.transpose; turns are counter-clockwise)."""
-
-    def edit(img: Image.Image, rng: random.Random) -> bytes:
-        out = img.transpose(getattr(Image.Transpose, method))
-        return then(out, rng) if then else _encode(out, "PNG")
-
-    return edit
-
-
-def _crop_share(share: float, mode: str) -> Callable[[Image.Image, random.Random], bytes]:
+def _crop_share(img: Image.Image, share: float, mode: str, rng: random.Random) -> Image.Image:
     """Cut ``share`` of each side: 'centre' half from each end, 'one' all from one random edge."""
+    w, h = img.size
+    if mode == "centre":
+        fr = [share / 2] * 4
+    else:
+        fr = [0.0] * 4
+        fr[rng.randrange(4)] = share
+    return img.crop((round(w * fr[0]), round(h * fr[1]), w - round(w * fr[2]), h - round(h * fr[3])))
 
+
+# Mirror images and turns (Pillow's Image.transpose; turns are counter-clockwise) and crops of 10-30%
+# of a side, alone and combined: the copies the default views were not built for, measured on their
+# own (bench/neardup_quality.py). Kept apart from TRANSFORMS, whose every edit the defaults are held to.
+HARD_TURNS = {"identity": None, "mirror": "FLIP_LEFT_RIGHT", "rot90": "ROTATE_90", "rot180": "ROTATE_180",
+              "rot270": "ROTATE_270"}
+HARD_CROPS = {"none": None, **{f"crop_{m}_{p}": (p / 100, m) for p in (10, 20, 30) for m in ("one", "centre")}}
+
+
+def _hard_edit(turn: str, crop: str) -> Callable[[Image.Image, random.Random], bytes]:
     def edit(img: Image.Image, rng: random.Random) -> bytes:
-        w, h = img.size
-        if mode == "centre":
-            fr = [share / 2] * 4
-        else:
-            fr = [0.0] * 4
-            fr[rng.randrange(4)] = share
-        box = (round(w * fr[0]), round(h * fr[1]), w - round(w * fr[2]), h - round(h * fr[3]))
-        return _encode(img.crop(box), "PNG")
+        out = img if HARD_CROPS[crop] is None else _crop_share(img, *HARD_CROPS[crop], rng)
+        if HARD_TURNS[turn]:
+            out = out.transpose(getattr(Image.Transpose, HARD_TURNS[turn]))
+        return _encode(out, "PNG")
 
     return edit
 
 
-# Edits the default views do not cover, measured on their own (bench/neardup_quality.py): mirror
-# images, quarter and half turns, and crops of 10-30% of a side. Kept apart from TRANSFORMS, whose
-# every edit the pipeline's defaults are held to.
+def hard_edit_name(turn: str, crop: str) -> str:
+    """The edit's name: the turn, the crop, or both joined by '+'."""
+    return "+".join(x for x in (turn if turn != "identity" else "", crop if crop != "none" else "") if x)
+
+
 HARD_EDITS: dict[str, dict[str, Callable[[Image.Image, random.Random], bytes]]] = {
-    "mirror": {"mirror": _transpose("FLIP_LEFT_RIGHT"),
-               "mirror_jpeg_q40": _transpose("FLIP_LEFT_RIGHT", _jpeg(40)),
-               "mirror_crop_one_8": _transpose("FLIP_LEFT_RIGHT", _crop(0.08, "one"))},
-    "turn": {"rot90": _transpose("ROTATE_90"), "rot180": _transpose("ROTATE_180"),
-             "rot270": _transpose("ROTATE_270")},
-    "crop_centre": {f"crop_centre_{p}": _crop_share(p / 100, "centre") for p in (10, 20, 30)},
-    "crop_one": {f"crop_one_{p}": _crop_share(p / 100, "one") for p in (10, 20, 30)},
+    turn: {hard_edit_name(turn, crop): _hard_edit(turn, crop) for crop in HARD_CROPS if (turn, crop) != ("identity", "none")}
+    for turn in HARD_TURNS
 }
 
 
-def hard_variants(name: str, img: Image.Image, seed: int = 0) -> list[tuple[str, str, bytes]]:
-    """(family, edit, bytes) for every edit of HARD_EDITS; deterministic per photo name and seed."""
+def hard_variants(name: str, img: Image.Image, seed: int = 0, turns: tuple[str, ...] | None = None,
+                  crops: tuple[str, ...] | None = None) -> list[tuple[str, str, bytes]]:
+    """(turn, edit, bytes) for the HARD_EDITS of the given turns and crops (default: all);
+    deterministic per photo name and seed."""
     out = []
-    for fam, edits in HARD_EDITS.items():
-        for ename, fn in edits.items():
+    for turn in turns or tuple(HARD_TURNS):
+        for crop in crops or tuple(HARD_CROPS):
+            if (turn, crop) == ("identity", "none"):
+                continue
+            ename = hard_edit_name(turn, crop)
             rng = random.Random(f"{seed}:{name}:{ename}")
-            out.append((fam, ename, fn(img, rng)))
+            out.append((turn, ename, HARD_EDITS[turn][ename](img, rng)))
     return out
 
 

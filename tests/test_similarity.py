@@ -20,7 +20,7 @@ imagehash = pytest.importorskip("imagehash")
 PIL = pytest.importorskip("PIL")
 from PIL import Image, ImageFilter  # noqa: E402
 
-PLAIN = dict(scales=[1.0], side_scale=0.0, corner_mask=0.0, transforms=[], work_size=0)
+PLAIN = dict(scales=[1.0], side_scale=0.0, corner_mask=0.0, transforms=[], check="", work_size=0)
 
 
 def _public_photos() -> list[Image.Image]:
@@ -108,23 +108,40 @@ def test_mirrored_picture_has_the_originals_mirror_views(photos):
     s = S.CodeSettings()
     ident = S.identity_count(s)
     for im in photos[:4]:
-        c, cm = S.image_codes(im, s), S.image_codes(ImageOps.mirror(im), s)
+        (c, chk), (cm, chkm) = C.split_codes(S.image_codes(im, s), s), C.split_codes(S.image_codes(ImageOps.mirror(im), s), s)
         assert np.array_equal(cm[:ident], c[ident:][[0, 1, 2, 4, 3, 5, 6]])
-        assert S.min_distance(c, cm, ident) == 0
+        assert np.array_equal(chkm[:ident], chk[ident:][[0, 1, 2, 4, 3, 5, 6]])
+        assert S.min_distance(c, cm, ident, chk, chkm, 0) == 0
+
+
+def test_check_codes_are_imagehash_dhash_of_each_views_thumbnail(photos):
+    # Reference: imagehash.dhash of the 32 px thumbnail of each view (the pHash input), and of the
+    # whole picture's thumbnail turned by Pillow.
+    s = S.CodeSettings(**{**PLAIN, "transforms": ["mirror", "rot180"], "check": "dhash"})
+    for im in photos[:3]:
+        main, check = C.split_codes(S.image_codes(im, s), s)
+        thumb = im.convert("L").resize((32, 32), Image.Resampling.LANCZOS)
+        assert main[0] == C.code_of(imagehash.phash(im))
+        assert check[0] == C.code_of(imagehash.dhash(thumb))
+        assert check[1] == C.code_of(imagehash.dhash(thumb.transpose(Image.Transpose.FLIP_LEFT_RIGHT)))
+        assert check[2] == C.code_of(imagehash.dhash(thumb.transpose(Image.Transpose.ROTATE_180)))
+    assert C.split_codes(np.zeros((5, 6), np.uint64), s)[1].shape == (5, 3)
+    with pytest.raises(ValueError):
+        C.split_codes(np.zeros(4, np.uint64), s)
 
 
 def test_views_layout_and_counts(photos):
     s = S.CodeSettings()
-    assert S.identity_count(s) == 7 and S.code_count(s) == 14
+    assert S.identity_count(s) == 7 and C.view_count(s) == 14 and S.code_count(s) == 28
     vs = S.views(s)
     assert [v.transform for v in vs] == ["identity"] * 7 + ["mirror"] * 7
     assert vs[0].box == (0.0, 0.0, 1.0, 1.0) and vs[7].box == vs[0].box
-    whole = S.CodeSettings(scales=[0.92], transforms=["mirror", "rot90"], transform_boxes="whole")
+    whole = S.CodeSettings(scales=[0.92], transforms=["mirror", "rot90"], transform_boxes="whole", check="")
     assert [(v.transform, v.box) for v in S.views(whole)][-2:] == [("mirror", (0.0, 0.0, 1.0, 1.0)),
                                                                     ("rot90", (0.0, 0.0, 1.0, 1.0))]
     c = S.image_codes(photos[0], whole)
     assert c.dtype == np.uint64 and c.shape == (S.code_count(whole),) == (8,)
-    assert S.image_codes(photos[0], S.CodeSettings(transforms=[])).shape == (7,)
+    assert S.image_codes(photos[0], S.CodeSettings(transforms=[], check="")).shape == (7,)
 
 
 def test_matched_transform_names_the_kept_to_member_transform():
@@ -138,6 +155,7 @@ def test_matched_transform_names_the_kept_to_member_transform():
 
 
 @pytest.mark.parametrize("bad", [dict(kind="ahash"), dict(transforms=["flip"]), dict(transforms=["mirror", "mirror"]),
+                                 dict(check="ahash"), dict(check="phash"),
                                  dict(scales=[]), dict(scales=[0.3]), dict(side_scale=1.0), dict(corner_mask=0.5),
                                  dict(work_size=16), dict(transform_boxes="some")])
 def test_bad_settings_are_refused(bad, photos):
@@ -165,7 +183,8 @@ def test_codes_survive_jpeg_draft_decoding(photos):
     draft = draft.convert("RGB")
     assert draft.size[0] < 1536  # draft mode really decoded at a reduced scale
     s = S.CodeSettings()
-    assert S.min_distance(S.image_codes(full, s), S.image_codes(draft, s), S.identity_count(s)) <= 2
+    (a, ca), (b, cb) = C.split_codes(S.image_codes(full, s), s), C.split_codes(S.image_codes(draft, s), s)
+    assert S.min_distance(a, b, S.identity_count(s), ca, cb, 8) <= 2
 
 
 # ----------------------------------------------------------------------------- distances
@@ -305,30 +324,38 @@ def test_radius_and_substring_validation():
         S.sample_pairs(np.zeros((3, 2), np.uint64), 4, identity=3)
 
 
-def _python_sample_distance(x: list[int], y: list[int], ident: int) -> tuple[int, int, int]:
-    """Closest allowed view pair by Python ints: (distance, view of x, view of y)."""
-    return min(((a ^ b).bit_count(), i, j) for i, a in enumerate(x) for j, b in enumerate(y) if i < ident or j < ident)
+def _python_sample_distance(x: list[int], y: list[int], ident: int, cx: list[int] | None = None,
+                            cy: list[int] | None = None, cr: int = 64) -> tuple[int, int, int]:
+    """Closest allowed view pair by Python ints: (distance, view of x, view of y); 65 when none."""
+    return min([((a ^ b).bit_count(), i, j) for i, a in enumerate(x) for j, b in enumerate(y)
+                if (i < ident or j < ident) and (cx is None or (cx[i] ^ cy[j]).bit_count() <= cr)] or [(65, -1, -1)])
 
 
-@settings(max_examples=30, deadline=None)
+@settings(max_examples=40, deadline=None)
 @given(seed=st.integers(0, 2**32 - 1), n=st.integers(1, 70), k=st.integers(1, 4), t=st.integers(0, 3),
-       radius=st.integers(0, 10))
-def test_sample_search_matches_python_reference(seed, n, k, t, radius):
+       radius=st.integers(0, 10), checked=st.booleans(), cr=st.integers(0, 12))
+def test_sample_search_matches_python_reference(seed, n, k, t, radius, checked, cr):
     # Reference: every allowed view pair of every sample pair, by Python's int.bit_count.
     codes = _clustered_codes(seed, n * (k + t), 8, 8).reshape(n, k + t)
+    chk = _clustered_codes(seed + 1, n * (k + t), 4, 6).reshape(n, k + t) if checked else None
+    cr = cr if checked else 64
     rows = [[int(v) for v in r] for r in codes]
+    crow = [[int(v) for v in r] for r in chk] if checked else [None] * n
     ref = {}
     for i in range(n):
         for j in range(i + 1, n):
-            d = _python_sample_distance(rows[i], rows[j], k)
+            d = _python_sample_distance(rows[i], rows[j], k, crow[i], crow[j], cr)
             if d[0] <= radius:
                 ref[(i, j)] = d[0]
-    got = S.sample_pairs(codes, radius, identity=k)
+    got = S.sample_pairs(codes, radius, identity=k, checks=chk, check_radius=cr)
     assert dict(zip(zip(got.i.tolist(), got.j.tolist()), got.distance.tolist())) == ref
     for i, j, d, vi, vj in zip(*(x.tolist() for x in got)):
         assert (vi < k or vj < k) and (rows[i][vi] ^ rows[j][vj]).bit_count() == d
+        assert not checked or (crow[i][vi] ^ crow[j][vj]).bit_count() <= cr
     half = n // 2
-    cross = S.sample_cross_pairs(codes[:half], codes[half:], radius, identity=k)
+    cross = S.sample_cross_pairs(codes[:half], codes[half:], radius, identity=k,
+                                 checks_a=None if chk is None else chk[:half],
+                                 checks_b=None if chk is None else chk[half:], check_radius=cr)
     expect = {(i, j - half): d for (i, j), d in ref.items() if i < half <= j}
     assert dict(zip(zip(cross.i.tolist(), cross.j.tolist()), cross.distance.tolist())) == expect
     for i, j, d, vi, vj in zip(*(x.tolist() for x in cross)):
@@ -336,7 +363,13 @@ def test_sample_search_matches_python_reference(seed, n, k, t, radius):
     # Components through the code graph are the components of those pairs.
     ii = np.array([p[0] for p in ref] or [], dtype=np.int64)
     jj = np.array([p[1] for p in ref] or [], dtype=np.int64)
-    assert np.array_equal(S.sample_components(codes, radius, identity=k), S.components(n, ii, jj))
+    comp = S.sample_components(codes, radius, identity=k, checks=chk, check_radius=cr)
+    assert np.array_equal(comp, S.components(n, ii, jj))
+    # The set-to-set form with masks gives the same pairs in full-array indices.
+    ok = np.random.default_rng(seed).random(n) < 0.8
+    both = S.cross_set_pairs(codes, codes, radius, k, ok, ok, chk, chk, cr)
+    want = {(i, j) for (i, j) in ref if ok[i] and ok[j]} | {(j, i) for (i, j) in ref if ok[i] and ok[j]}
+    assert {(i, j) for i, j in zip(both.i.tolist(), both.j.tolist()) if i != j} == want
 
 
 # ----------------------------------------------------------------------------- union-find
@@ -389,10 +422,13 @@ def _sequential_leaders(rank: list, adj: dict[int, set]) -> list[int]:
 @settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(seed=st.integers(0, 2**32 - 1), n=st.integers(1, 60), k=st.integers(1, 3), t=st.integers(0, 2),
        radius=st.integers(0, 10), keys=st.integers(1, 80), emb_links=st.integers(0, 30),
-       max_rounds=st.sampled_from([0, 1, 2, 64]))
-def test_leader_groups_follow_the_sequential_rule(seed, n, k, t, radius, keys, emb_links, max_rounds):
+       max_rounds=st.sampled_from([0, 1, 2, 64]), checked=st.booleans())
+def test_leader_groups_follow_the_sequential_rule(seed, n, k, t, radius, keys, emb_links, max_rounds, checked):
     rng = np.random.default_rng(seed)
     codes = _clustered_codes(seed, n * (k + t), 5, 7).reshape(n, k + t)
+    chk = _clustered_codes(seed + 1, n * (k + t), 3, 6).reshape(n, k + t) if checked else None
+    cr = 6 if checked else 64
+    crow = [[int(v) for v in r] for r in chk] if checked else [None] * n
     has = rng.random(n) < 0.9
     same = np.where(rng.random(n) < 0.7, rng.integers(0, keys, n), -1)
     ei, ej = rng.integers(0, n, emb_links), rng.integers(0, n, emb_links)
@@ -406,14 +442,15 @@ def test_leader_groups_follow_the_sequential_rule(seed, n, k, t, radius, keys, e
                 continue
             if same[a] >= 0 and same[a] == same[b]:
                 adj[a].add(b)
-            if has[a] and has[b] and _python_sample_distance(rows[a], rows[b], k)[0] <= radius:
+            if has[a] and has[b] and _python_sample_distance(rows[a], rows[b], k, crow[a], crow[b], cr)[0] <= radius:
                 adj[a].add(b)
     for a, b in zip(ei.tolist(), ej.tolist()):
         if a != b:
             adj[a].add(b)
             adj[b].add(a)
     want = _sequential_leaders(rank.tolist(), adj)
-    sig = S.Signals(same_key=same, codes=codes, has_codes=has, identity=k, radius=radius, emb_pairs=(ei, ej, cos))
+    sig = S.Signals(same_key=same, codes=codes, has_codes=has, identity=k, radius=radius, checks=chk, check_radius=cr,
+                    emb_pairs=(ei, ej, cos))
     g = S.group(rank, sig, max_rounds=max_rounds)
     assert g.leader.tolist() == want
     # Each member's reported link is its strongest one to its leader, at the right distance.
@@ -421,8 +458,8 @@ def test_leader_groups_follow_the_sequential_rule(seed, n, k, t, radius, keys, e
         lead = int(g.leader[m])
         if same[m] >= 0 and same[m] == same[lead]:
             assert (g.signal[m], g.distance[m]) == (groups.SAME_BYTES, 0)
-        elif has[m] and has[lead] and _python_sample_distance(rows[lead], rows[m], k)[0] <= radius:
-            d, vk, vm = _python_sample_distance(rows[lead], rows[m], k)
+        elif has[m] and has[lead] and _python_sample_distance(rows[lead], rows[m], k, crow[lead], crow[m], cr)[0] <= radius:
+            d, vk, vm = _python_sample_distance(rows[lead], rows[m], k, crow[lead], crow[m], cr)
             assert (g.signal[m], g.distance[m]) == (groups.CODES, d)
             assert (rows[lead][g.view_kept[m]] ^ rows[m][g.view_member[m]]).bit_count() == d
         else:

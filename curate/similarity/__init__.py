@@ -35,8 +35,10 @@ from .hamming import (
     CodeGraph,
     Pairs,
     ViewPairs,
+    closest,
     code_graph,
     cross_pairs,
+    cross_set_pairs,
     min_distance,
     min_distances,
     range_pairs,
@@ -49,6 +51,6 @@ __all__ = [
     "TRANSFORMS", "CodeSettings", "View", "code_count", "identity_count", "image_codes", "matched_transform", "views",
     "cosine_pairs", "cross_cosine",
     "SIGNALS", "Groups", "Signals", "UnionFind", "components", "greedy_leaders", "group", "sample_components",
-    "CodeGraph", "Pairs", "ViewPairs", "code_graph", "cross_pairs", "min_distance", "min_distances",
+    "CodeGraph", "Pairs", "ViewPairs", "closest", "code_graph", "cross_set_pairs", "cross_pairs", "min_distance", "min_distances",
     "range_pairs", "sample_cross_pairs", "sample_pairs", "view_distances",
 ]

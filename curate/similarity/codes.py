@@ -12,6 +12,8 @@ from typing import Any, NamedTuple, Sequence
 import numpy as np
 
 BITS = 64
+# Bump when the same settings give different codes (cached codes are keyed by it).
+VERSION = "3"
 
 # Transforms of the square work picture, as Pillow's Image.transpose methods (rotations are
 # counter-clockwise, Pillow's convention). "mirror" flips left and right; the compound names
@@ -55,6 +57,11 @@ class CodeSettings:
     # The grey picture is resized to this square before cropping, so every source size and JPEG
     # draft decode hashes on the same grid (common practice; 8x imagehash's 32 px DCT input). 0 = off.
     work_size: int = 256
+    # A second code per view, of another hash family ("dhash" or "phash"; "" = none), that a match
+    # must also pass on the same pair of views: two different pictures whose pHash views collide
+    # (measured: 6-8 bits apart among the public photos' crops and turns) differ by 27+ bits in
+    # dHash, copies by at most 18 (bench/neardup_quality.py).
+    check: str = "dhash"
 
     def validate(self) -> None:
         """Raise ValueError naming the first bad field."""
@@ -76,6 +83,8 @@ class CodeSettings:
             raise ValueError("transforms must not repeat a name")
         if self.transform_boxes not in ("all", "whole"):
             raise ValueError(f"transform_boxes must be all or whole, got {self.transform_boxes!r}")
+        if self.check not in ("", "phash", "dhash") or self.check == self.kind:
+            raise ValueError(f"check must be '', phash or dhash and differ from kind, got {self.check!r}")
         if self.work_size < 0 or 0 < self.work_size < 32:
             raise ValueError(f"work_size must be 0 (off) or at least 32, got {self.work_size}")
 
@@ -123,13 +132,27 @@ def views(settings: CodeSettings) -> list[View]:
 
 
 def identity_count(settings: CodeSettings) -> int:
-    """How many leading codes are views of the untransformed picture."""
+    """How many leading views are views of the untransformed picture."""
     return len(_view_boxes(settings))
 
 
-def code_count(settings: CodeSettings) -> int:
-    """How many codes ``image_codes`` makes per picture."""
+def view_count(settings: CodeSettings) -> int:
+    """How many views (main codes) a picture has."""
     return len(views(settings))
+
+
+def code_count(settings: CodeSettings) -> int:
+    """How many codes ``image_codes`` makes per picture: one per view, twice with a check code."""
+    return view_count(settings) * (2 if settings.check else 1)
+
+
+def split_codes(codes: Any, settings: CodeSettings) -> tuple[np.ndarray, np.ndarray | None]:
+    """(main codes, check codes or None) of ``image_codes`` output, 1-D or one row per picture."""
+    c = np.asarray(codes, dtype=np.uint64)
+    k = view_count(settings)
+    if c.shape[-1] != code_count(settings):
+        raise ValueError(f"expected {code_count(settings)} codes per picture, got {c.shape[-1]}")
+    return c[..., :k], (c[..., k:] if settings.check else None)
 
 
 def code_of(h: Any) -> int:
@@ -215,13 +238,24 @@ def phash_codes(thumbs: np.ndarray) -> np.ndarray:
     return np.packbits(bits, axis=1).view(">u8").ravel().astype(np.uint64)
 
 
-def _phash_views(crops: list[Any], transforms: Sequence[str], t_count: int) -> np.ndarray:
-    """pHash of every crop, then of each transform of the first t_count crops (on the thumbnail)."""
+def dhash_codes(thumbs: np.ndarray) -> np.ndarray:
+    """imagehash.dhash of each grey thumbnail in a stack: 9x8 resize, each pixel brighter than its
+    left neighbour, first bit most significant."""
+    from PIL import Image
+
+    small = np.stack([np.asarray(Image.fromarray(np.ascontiguousarray(a)).resize((9, 8), Image.Resampling.LANCZOS))
+                      for a in thumbs])
+    bits = (small[:, :, 1:] > small[:, :, :-1]).reshape(thumbs.shape[0], -1)
+    return np.packbits(bits, axis=1).view(">u8").ravel().astype(np.uint64)
+
+
+def _view_thumbs(crops: list[Any], transforms: Sequence[str], t_count: int) -> np.ndarray:
+    """The 32 px thumbnail of every view: each crop's, then each transform of the first t_count."""
     from PIL import Image
 
     thumbs = np.stack([np.asarray(c.resize((_PHASH_IN, _PHASH_IN), Image.Resampling.LANCZOS)) for c in crops])
     stack = [thumbs] + [np.stack([_ARRAY_OPS[t](a) for a in thumbs[:t_count]]) for t in transforms]
-    return phash_codes(np.ascontiguousarray(np.concatenate(stack)))
+    return np.ascontiguousarray(np.concatenate(stack))
 
 
 def _dhash_views(crops: list[Any], transforms: Sequence[str], t_count: int) -> np.ndarray:
@@ -236,12 +270,13 @@ def _dhash_views(crops: list[Any], transforms: Sequence[str], t_count: int) -> n
 
 
 def image_codes(img: Any, settings: CodeSettings | None = None) -> np.ndarray:
-    """uint64 codes of every view of one Pillow image, in ``views(settings)`` order.
+    """uint64 codes of one Pillow image: one per view in ``views(settings)`` order, then (with a
+    ``check`` family) one check code per view in the same order (see ``split_codes``).
 
     The picture goes to grey and (``work_size`` > 0) to a square, is cut into crop boxes whose
     corners are masked, and each crop is hashed as imagehash does, then each transform of it.
-    With scales=[1.0], side_scale=0, corner_mask=0, transforms=[], work_size=0 the one code is
-    imagehash's own hash of the picture.
+    With scales=[1.0], side_scale=0, corner_mask=0, transforms=[], check="", work_size=0 the one
+    code is imagehash's own hash of the picture.
     """
     s = settings or CodeSettings()
     s.validate()
@@ -249,8 +284,12 @@ def image_codes(img: Any, settings: CodeSettings | None = None) -> np.ndarray:
     boxes = _view_boxes(s)
     crops = _crops(grey, boxes, s.corner_mask)
     t_count = len(boxes) if s.transform_boxes == "all" else 1
-    fn = _phash_views if s.kind == "phash" else _dhash_views
-    return fn(crops, s.transforms, t_count)
+    thumbs = _view_thumbs(crops, s.transforms, t_count) if s.kind == "phash" or s.check else None
+    main = phash_codes(thumbs) if s.kind == "phash" else _dhash_views(crops, s.transforms, t_count)
+    if not s.check:
+        return main
+    check = dhash_codes(thumbs) if s.check == "dhash" else phash_codes(thumbs)
+    return np.concatenate([main, check])
 
 
 def matched_transform(view_list: Sequence[View], kept_view: int, member_view: int) -> str:

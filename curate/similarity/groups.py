@@ -15,7 +15,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from .hamming import CodeGraph, check_radius, code_graph, view_distances
+from .hamming import BITS, CodeGraph, code_graph, valid_radius, view_distances
 
 INF = np.iinfo(np.int64).max
 # Signal codes, strongest first: a member is reported under the strongest signal linking it to its leader.
@@ -86,14 +86,14 @@ def graph_components(n: int, graph: CodeGraph) -> np.ndarray:
     return components(n + graph.tokens, i, j)[:n]
 
 
-def sample_components(codes2d: Any, radius: int, identity: int | None = None, substrings: int | None = None,
-                      threads: int = 1) -> np.ndarray:
+def sample_components(codes2d: Any, radius: int, identity: int | None = None, checks: Any = None,
+                      check_radius: int = BITS, substrings: int | None = None, threads: int = 1) -> np.ndarray:
     """Component label of each row: rows are linked when their sample distance is within ``radius``.
 
     Works on distinct codes, so a picture held by many rows costs no more than a single one.
     """
     c = np.asarray(codes2d)
-    return graph_components(c.shape[0], code_graph(c, radius, identity, substrings, threads))
+    return graph_components(c.shape[0], code_graph(c, radius, identity, checks, check_radius, substrings, threads))
 
 
 # --------------------------------------------------------------------------- adjacency
@@ -330,6 +330,8 @@ class Signals:
     has_codes: Any = None  # bool[n]: rows whose codes are valid (None: all)
     identity: int | None = None  # leading identity views per row (None: every view)
     radius: int = 8  # Hamming radius of the codes signal (bits)
+    checks: Any = None  # uint64[n, K]: a check code per view (None: none)
+    check_radius: int = BITS  # a view pair counts only when its check codes are this close (bits)
     emb_pairs: Any = None  # (i, j, cosine) arrays: embedding links, e.g. from cosine.cosine_pairs
     emb: Any = None  # float32[n, D]: L2-normalised embeddings, to report the distance of an embedding link
 
@@ -349,7 +351,9 @@ def group(rank: Any, signals: Signals, *, substrings: int | None = None, threads
         codes = codes[:, None] if codes.ndim == 1 else codes
         rows = np.arange(n) if signals.has_codes is None else np.flatnonzero(np.asarray(signals.has_codes, bool))
         if rows.shape[0]:
-            g = code_graph(codes[rows], check_radius(signals.radius), signals.identity, substrings, threads)
+            chk = None if signals.checks is None else np.asarray(signals.checks, dtype=np.uint64).reshape(codes.shape)[rows]
+            g = code_graph(codes[rows], valid_radius(signals.radius), signals.identity, chk, signals.check_radius,
+                           substrings, threads)
             graphs.append(_rows_graph(g, rows))
     if signals.emb_pairs is not None:
         pi, pj = (np.asarray(x, dtype=np.int64) for x in signals.emb_pairs[:2])
@@ -376,7 +380,8 @@ def _annotate(leader: np.ndarray, used: int, signals: Signals, codes: np.ndarray
         has = np.zeros(n, bool)
         has[rows] = True
         both = todo[has[todo] & has[leader[todo]]]
-        d, va, vb = _chunked_view_distances(codes, leader[both], both, signals.identity)
+        chk = None if signals.checks is None else np.asarray(signals.checks, dtype=np.uint64).reshape(codes.shape)
+        d, va, vb = _chunked_view_distances(codes, chk, leader[both], both, signals.identity, signals.check_radius)
         near = d <= signals.radius
         sel = both[near]
         signal[sel], dist[sel], vk[sel], vm[sel] = CODES, d[near], va[near], vb[near]
@@ -393,11 +398,13 @@ def _annotate(leader: np.ndarray, used: int, signals: Signals, codes: np.ndarray
     return Groups(leader, signal, dist, vk, vm, used)
 
 
-def _chunked_view_distances(codes: np.ndarray, a: np.ndarray, b: np.ndarray, identity: int | None,
+def _chunked_view_distances(codes: np.ndarray, checks: np.ndarray | None, a: np.ndarray, b: np.ndarray,
+                            identity: int | None, check_radius: int,
                             chunk: int = 65536) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """``view_distances`` of rows a[k] and b[k], in chunks (the K x K temporaries stay small)."""
-    parts = [view_distances(codes[a[s : s + chunk]], codes[b[s : s + chunk]], identity)
-             for s in range(0, a.shape[0], chunk)]
+    pick = (lambda rows: None if checks is None else checks[rows])  # noqa: E731
+    parts = [view_distances(codes[a[s : s + chunk]], codes[b[s : s + chunk]], identity, pick(a[s : s + chunk]),
+                            pick(b[s : s + chunk]), check_radius) for s in range(0, a.shape[0], chunk)]
     if not parts:
         e = np.empty(0, np.int16)
         return e, e, e

@@ -30,7 +30,10 @@ class Pairs(NamedTuple):
 
 
 class ViewPairs(NamedTuple):
-    """Sample pairs, their distance and the two views (code positions) that gave it; by (i, j)."""
+    """Sample pairs, their distance and the two views (code positions) that gave it; by (i, j).
+
+    ``len()`` is the number of pairs, so build new ones with the constructor, not ``_replace``.
+    """
 
     i: np.ndarray
     j: np.ndarray
@@ -51,7 +54,7 @@ def _sorted_pairs(i: np.ndarray, j: np.ndarray, d: np.ndarray) -> Pairs:
     return Pairs(i[order].astype(np.int64), j[order].astype(np.int64), d[order])
 
 
-def check_radius(radius: int) -> int:
+def valid_radius(radius: int) -> int:
     """The radius as an int; ValueError outside 0..64."""
     r = int(radius)
     if r < 0 or r > BITS:
@@ -90,11 +93,13 @@ def _allowed(k_a: int, k_b: int, identity: int | None) -> np.ndarray:
     return (np.arange(k_a)[:, None] < identity) | (np.arange(k_b)[None, :] < identity)
 
 
-def view_distances(a2d: Any, b2d: Any, identity: int | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def view_distances(a2d: Any, b2d: Any, identity: int | None = None, checks_a: Any = None, checks_b: Any = None,
+                   check_radius: int = BITS) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Row-wise sample distance of two (n, K) arrays, and the views of a and b that gave it.
 
-    ``identity``: how many leading views are untransformed (None: all). Of equally close view
-    pairs the first identity pair wins, else the first pair (row-major order).
+    ``identity``: how many leading views are untransformed (None: all). With check codes, only view
+    pairs whose check codes are within ``check_radius`` count; a row with none gets BITS + 1. Of
+    equally close view pairs the first identity pair wins, else the first pair (row-major order).
     """
     a, b = _rows(a2d), _rows(b2d)
     ka, kb = a.shape[1], b.shape[1]
@@ -103,20 +108,29 @@ def view_distances(a2d: Any, b2d: Any, identity: int | None = None) -> tuple[np.
     ident_b = np.arange(kb) < (kb if identity is None else identity)
     both_identity = (ident_a[:, None] & ident_b[None, :]).ravel()
     d = hamming(a[:, :, None], b[:, None, :]).reshape(a.shape[0], ka * kb)
-    key = np.where(allowed, 2 * d + (~both_identity), 4 * BITS)
+    ok = np.broadcast_to(allowed, d.shape)
+    if checks_a is not None and checks_b is not None:
+        ca, cb = _rows(checks_a), _rows(checks_b)
+        ok = ok & (hamming(ca[:, :, None], cb[:, None, :]).reshape(d.shape) <= check_radius)
+    key = np.where(ok, 2 * d + (~both_identity), 4 * BITS)
     best = np.argmin(key, axis=1)
+    rows = np.arange(d.shape[0])
     va, vb = np.divmod(best, kb)
-    return d[np.arange(d.shape[0]), best], va.astype(np.int16), vb.astype(np.int16)
+    dist = np.where(key[rows, best] >= 4 * BITS, BITS + 1, d[rows, best]).astype(np.int16)
+    return dist, va.astype(np.int16), vb.astype(np.int16)
 
 
-def min_distance(a: Any, b: Any, identity: int | None = None) -> int:
+def min_distance(a: Any, b: Any, identity: int | None = None, checks_a: Any = None, checks_b: Any = None,
+                 check_radius: int = BITS) -> int:
     """Distance of two samples' codes (1-D arrays): the closest allowed view pair."""
-    return int(view_distances(np.asarray(a).ravel()[None, :], np.asarray(b).ravel()[None, :], identity)[0][0])
+    row = (lambda x: None if x is None else np.asarray(x).ravel()[None, :])  # noqa: E731
+    return int(view_distances(row(a), row(b), identity, row(checks_a), row(checks_b), check_radius)[0][0])
 
 
-def min_distances(a2d: Any, b2d: Any, identity: int | None = None) -> np.ndarray:
+def min_distances(a2d: Any, b2d: Any, identity: int | None = None, checks_a: Any = None, checks_b: Any = None,
+                  check_radius: int = BITS) -> np.ndarray:
     """Row-wise ``min_distance`` of two (n, K) code arrays."""
-    return view_distances(a2d, b2d, identity)[0]
+    return view_distances(a2d, b2d, identity, checks_a, checks_b, check_radius)[0]
 
 
 # --------------------------------------------------------------------------- single codes
@@ -125,12 +139,12 @@ def min_distances(a2d: Any, b2d: Any, identity: int | None = None) -> np.ndarray
 def brute_pairs(codes: Any, radius: int) -> Pairs:
     """Quadratic reference: every pair i < j with distance <= radius."""
     c = as_codes(codes)
-    return _sorted_pairs(*mih.brute_join(c, None, check_radius(radius)))
+    return _sorted_pairs(*mih.brute_join(c, None, valid_radius(radius)))
 
 
 def brute_cross_pairs(codes_a: Any, codes_b: Any, radius: int) -> Pairs:
     """Quadratic reference: every (i in a, j in b) with distance <= radius."""
-    return _sorted_pairs(*mih.brute_join(as_codes(codes_a), as_codes(codes_b), check_radius(radius)))
+    return _sorted_pairs(*mih.brute_join(as_codes(codes_a), as_codes(codes_b), valid_radius(radius)))
 
 
 def _members(inv: np.ndarray, n_unique: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -168,7 +182,7 @@ def range_pairs(codes: Any, radius: int, substrings: int | None = None, threads:
     searched side by side.
     """
     c = as_codes(codes)
-    r = check_radius(radius)
+    r = valid_radius(radius)
     u, inv = np.unique(c, return_inverse=True)
     mem = _members(inv.ravel(), u.shape[0])
     ui, uj, ud = mih.unique_join(u, None, r, substrings, threads)
@@ -192,7 +206,7 @@ def unique_cross(ua: np.ndarray, ub: np.ndarray, radius: int, substrings: int | 
 def cross_pairs(codes_a: Any, codes_b: Any, radius: int, substrings: int | None = None, threads: int = 1) -> Pairs:
     """Every (i, j), i indexing ``codes_a`` and j ``codes_b``, within ``radius`` bits; exact."""
     a, b = as_codes(codes_a), as_codes(codes_b)
-    r = check_radius(radius)
+    r = valid_radius(radius)
     ua, inv_a = np.unique(a, return_inverse=True)
     ub, inv_b = np.unique(b, return_inverse=True)
     mem_a, mem_b = _members(inv_a.ravel(), ua.shape[0]), _members(inv_b.ravel(), ub.shape[0])
@@ -222,6 +236,15 @@ def _split_views(codes2d: Any, identity: int | None) -> tuple[np.ndarray, np.nda
     return c[:, :ident], c[:, ident:], ident
 
 
+def _checks_like(checks: Any, codes2d: Any) -> np.ndarray | None:
+    if checks is None:
+        return None
+    c = _rows(checks)
+    if c.shape != _rows(codes2d).shape:
+        raise ValueError(f"check codes have shape {c.shape}, the codes {_rows(codes2d).shape}")
+    return c
+
+
 def _best_per_pair(i, j, d, vi, vj, ident: int) -> ViewPairs:
     """One row per (i, j): the smallest distance; ties to an identity pair, then the first views."""
     if i.shape[0] == 0:
@@ -235,22 +258,38 @@ def _best_per_pair(i, j, d, vi, vj, ident: int) -> ViewPairs:
                      vi[first].astype(np.int16), vj[first].astype(np.int16))
 
 
-def sample_pairs(codes2d: Any, radius: int, identity: int | None = None, substrings: int | None = None,
-                 threads: int = 1) -> ViewPairs:
+def _checked(parts: list[tuple], check_radius: int) -> list[tuple]:
+    """Keep the view pairs whose check codes (last two fields) are within check_radius."""
+    out = []
+    for a, b, d, va, vb, ca, cb in parts:
+        if ca is not None:
+            ok = hamming(ca, cb) <= check_radius
+            a, b, d, va, vb = a[ok], b[ok], d[ok], va[ok], vb[ok]
+        out.append((a, b, d, va, vb))
+    return out
+
+
+def sample_pairs(codes2d: Any, radius: int, identity: int | None = None, checks: Any = None,
+                 check_radius: int = BITS, substrings: int | None = None, threads: int = 1) -> ViewPairs:
     """Every pair of rows i < j within ``radius`` by the sample distance (see the module); exact.
 
     ``identity``: how many leading columns are untransformed views (None: all of them).
+    ``checks``: a second code per view; a view pair counts only when those are within ``check_radius``.
     """
-    r = check_radius(radius)
+    r = valid_radius(radius)
     ids, trs, ident = _split_views(codes2d, identity)
+    chk = _checks_like(checks, codes2d)
     fi, oi, vi = _flatten(ids)
     p = range_pairs(fi, r, substrings, threads)
-    parts = [(oi[p.i], oi[p.j], p.distance, vi[p.i], vi[p.j])]
+    ci = None if chk is None else as_codes(chk[:, :ident].reshape(-1))
+    parts = [(oi[p.i], oi[p.j], p.distance, vi[p.i], vi[p.j], *((ci[p.i], ci[p.j]) if ci is not None else (None, None)))]
     if trs.shape[1]:
         ft, ot, vt = _flatten(trs, ident)
         q = cross_pairs(fi, ft, r, substrings, threads)
-        parts.append((oi[q.i], ot[q.j], q.distance, vi[q.i], vt[q.j]))
-    a, b, d, va, vb = (np.concatenate(x) for x in zip(*parts))
+        ct = None if chk is None else as_codes(chk[:, ident:].reshape(-1))
+        parts.append((oi[q.i], ot[q.j], q.distance, vi[q.i], vt[q.j],
+                      *((ci[q.i], ct[q.j]) if ci is not None else (None, None))))
+    a, b, d, va, vb = (np.concatenate(x) for x in zip(*_checked(parts, check_radius)))
     keep = a != b
     a, b, d, va, vb = a[keep], b[keep], d[keep], va[keep], vb[keep]
     swap = a > b
@@ -259,39 +298,48 @@ def sample_pairs(codes2d: Any, radius: int, identity: int | None = None, substri
 
 
 def sample_cross_pairs(codes2d_a: Any, codes2d_b: Any, radius: int, identity: int | None = None,
+                       checks_a: Any = None, checks_b: Any = None, check_radius: int = BITS,
                        substrings: int | None = None, threads: int = 1) -> ViewPairs:
     """Every (row of a, row of b) within ``radius`` by the sample distance; exact."""
-    r = check_radius(radius)
+    r = valid_radius(radius)
     a_id, a_tr, ident = _split_views(codes2d_a, identity)
     b_id, b_tr, ident_b = _split_views(codes2d_b, identity)
     if ident_b != ident or a_tr.shape[1] != b_tr.shape[1]:
         raise ValueError("both sets must hold the same views")
+    ca, cb = _checks_like(checks_a, codes2d_a), _checks_like(checks_b, codes2d_b)
+    if (ca is None) != (cb is None):
+        raise ValueError("give check codes for both sets or for neither")
+    flat = (lambda c, lo, hi: None if c is None else as_codes(c[:, lo:hi].reshape(-1)))  # noqa: E731
     fa, oa, va = _flatten(a_id)
     fb_all, ob_all, vb_all = _flatten(_rows(codes2d_b))
     p = cross_pairs(fa, fb_all, r, substrings, threads)
-    parts = [(oa[p.i], ob_all[p.j], p.distance, va[p.i], vb_all[p.j])]
+    x, y = flat(ca, 0, ident), flat(cb, 0, None)
+    parts = [(oa[p.i], ob_all[p.j], p.distance, va[p.i], vb_all[p.j], *((x[p.i], y[p.j]) if x is not None else (None, None)))]
     if a_tr.shape[1]:
         ft, ot, vt = _flatten(a_tr, ident)
         fb, ob, vb = _flatten(b_id)
         q = cross_pairs(ft, fb, r, substrings, threads)
-        parts.append((ot[q.i], ob[q.j], q.distance, vt[q.i], vb[q.j]))
-    a, b, d, x, y = (np.concatenate(v) for v in zip(*parts))
-    return _best_per_pair(a, b, d, x, y, ident)
+        x, y = flat(ca, ident, None), flat(cb, 0, ident)
+        parts.append((ot[q.i], ob[q.j], q.distance, vt[q.i], vb[q.j], *((x[q.i], y[q.j]) if x is not None else (None, None))))
+    a, b, d, u, v = (np.concatenate(z) for z in zip(*_checked(parts, check_radius)))
+    return _best_per_pair(a, b, d, u, v, ident)
 
 
 # --------------------------------------------------------------------------- code graph
 
 
 class CodeGraph(NamedTuple):
-    """Links between samples through their distinct identity codes ("tokens").
+    """Links between samples through their distinct identity views ("tokens": a main code with its
+    check code).
 
     Samples s and t are within the radius exactly when one of them owns a token that the other
     owns, or that is within the radius of one the other owns (an edge), or when a transformed view
-    of one is within the radius of a token the other owns (a reach). Built without listing sample
-    pairs, so a picture held by many samples costs one token, not a quadratic number of pairs.
+    of one is within the radius of a token the other owns (a reach); "within" includes the check
+    codes passing. Built without listing sample pairs, so a picture held by many samples costs one
+    token, not a quadratic number of pairs.
     """
 
-    tokens: int  # number of distinct identity codes
+    tokens: int  # number of distinct identity tokens
     own_s: np.ndarray  # sample s owns token own_u (unique pairs)
     own_u: np.ndarray
     reach_s: np.ndarray  # a transformed view of sample reach_s is within the radius of token reach_u
@@ -305,25 +353,91 @@ def _unique_pairs(s: np.ndarray, u: np.ndarray, n_u: int) -> tuple[np.ndarray, n
     return key // max(n_u, 1), key % max(n_u, 1)
 
 
-def code_graph(codes2d: Any, radius: int, identity: int | None = None, substrings: int | None = None,
-               threads: int = 1) -> CodeGraph:
+def _tokens(main: np.ndarray, check: np.ndarray | None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Distinct (main, check) pairs: (main codes, check codes, token of each input)."""
+    if check is None:
+        u, inv = np.unique(main, return_inverse=True)
+        return u, np.zeros_like(u), inv.ravel()
+    order = np.lexsort((check, main))
+    m, c = main[order], check[order]
+    first = np.concatenate(([True], (m[1:] != m[:-1]) | (c[1:] != c[:-1]))) if m.shape[0] else np.zeros(0, bool)
+    tok = np.cumsum(first) - 1
+    inv = np.empty_like(tok)
+    inv[order] = tok
+    return m[first], c[first], inv
+
+
+def _token_pairs(pa: np.ndarray, ca: np.ndarray, pb: np.ndarray | None, cb: np.ndarray | None, radius: int,
+                 check_radius: int, substrings: int | None, threads: int) -> tuple[np.ndarray, np.ndarray]:
+    """Token pairs (a, b) whose main codes are within ``radius`` and check codes within
+    ``check_radius`` (pb None: pairs a < b of one token set)."""
+    ua, inv_a = np.unique(pa, return_inverse=True)
+    mem_a = _members(inv_a.ravel(), ua.shape[0])
+    if pb is None:
+        ui, uj, _ = mih.unique_join(ua, None, radius, substrings, threads)
+        x, y, _ = _expand_members(ui, uj, np.zeros(ui.shape[0], np.int16), mem_a, mem_a)
+        x0, y0 = _same_code_pairs(mem_a)
+        x, y, cb = np.concatenate([x, x0]), np.concatenate([y, y0]), ca
+    else:
+        ub, inv_b = np.unique(pb, return_inverse=True)
+        ui, uj, _ = unique_cross(ua, ub, radius, substrings, threads)
+        x, y, _ = _expand_members(ui, uj, np.zeros(ui.shape[0], np.int16), mem_a,
+                                  _members(inv_b.ravel(), ub.shape[0]))
+    ok = hamming(ca[x], cb[y]) <= check_radius
+    return x[ok].astype(np.int64), y[ok].astype(np.int64)
+
+
+def code_graph(codes2d: Any, radius: int, identity: int | None = None, checks: Any = None,
+               check_radius: int = BITS, substrings: int | None = None, threads: int = 1) -> CodeGraph:
     """The ``CodeGraph`` of (n, K) sample codes at ``radius``; exact (multi-index search)."""
-    r = check_radius(radius)
-    ids, trs, _ = _split_views(codes2d, identity)
+    r = valid_radius(radius)
+    ids, trs, ident = _split_views(codes2d, identity)
+    chk = _checks_like(checks, codes2d)
     fi, oi, _ = _flatten(ids)
-    tok, inv = np.unique(fi, return_inverse=True)
-    own_s, own_u = _unique_pairs(oi, inv.ravel(), tok.shape[0])
-    eu, ev, _ = mih.unique_join(tok, None, r, substrings, threads)
+    tp, tc, inv = _tokens(fi, None if chk is None else as_codes(chk[:, :ident].reshape(-1)))
+    own_s, own_u = _unique_pairs(oi, inv, tp.shape[0])
+    eu, ev = _token_pairs(tp, tc, None, None, r, check_radius, substrings, threads)
     eu, ev = np.minimum(eu, ev), np.maximum(eu, ev)
     reach_s = reach_u = np.empty(0, np.int64)
     if trs.shape[1]:
         ft, ot, _ = _flatten(trs)
-        ttok, tinv = np.unique(ft, return_inverse=True)
-        ti, tu, _ = unique_cross(ttok, tok, r, substrings, threads)
-        order, starts, counts = _members(tinv.ravel(), ttok.shape[0])
+        xp, xc, xinv = _tokens(ft, None if chk is None else as_codes(chk[:, ident:].reshape(-1)))
+        ti, tu = _token_pairs(xp, xc, tp, tc, r, check_radius, substrings, threads)
+        order, starts, counts = _members(xinv, xp.shape[0])
         # Every sample holding a transformed token reaches the identity tokens near it.
         per = counts[ti]
         src = np.repeat(np.arange(ti.shape[0]), per)
         pos = np.repeat(starts[ti], per) + (np.arange(src.shape[0]) - np.repeat(np.cumsum(per) - per, per))
-        reach_s, reach_u = _unique_pairs(ot[order[pos]], tu[src], tok.shape[0])
-    return CodeGraph(int(tok.shape[0]), own_s, own_u, reach_s, reach_u, eu.astype(np.int64), ev.astype(np.int64))
+        reach_s, reach_u = _unique_pairs(ot[order[pos]], tu[src], tp.shape[0])
+    return CodeGraph(int(tp.shape[0]), own_s, own_u, reach_s, reach_u, eu, ev)
+
+
+# --------------------------------------------------------------------------- two sets
+
+
+def cross_set_pairs(codes_a: Any, codes_b: Any, radius: int, identity: int | None = None, ok_a: Any = None,
+                    ok_b: Any = None, checks_a: Any = None, checks_b: Any = None, check_radius: int = BITS,
+                    substrings: int | None = None, threads: int = 1) -> ViewPairs:
+    """Every (row of a, row of b) within ``radius`` among rows whose codes are valid (``ok_*``,
+    None: all); indices into the full arrays. Leak checks and eval-set decontamination use this."""
+    a, b = _rows(codes_a), _rows(codes_b)
+    ra = np.arange(a.shape[0]) if ok_a is None else np.flatnonzero(np.asarray(ok_a, dtype=bool))
+    rb = np.arange(b.shape[0]) if ok_b is None else np.flatnonzero(np.asarray(ok_b, dtype=bool))
+    if not ra.shape[0] or not rb.shape[0]:
+        return _best_per_pair(*(np.empty(0, np.int64),) * 5, 0)
+    sub = (lambda c, rows: None if c is None else _rows(c)[rows])  # noqa: E731
+    p = sample_cross_pairs(a[ra], b[rb], radius, identity, sub(checks_a, ra), sub(checks_b, rb), check_radius,
+                           substrings, threads)
+    return ViewPairs(ra[p.i], rb[p.j], p.distance, p.view_i, p.view_j)
+
+
+def closest(pairs: ViewPairs, n: int) -> ViewPairs:
+    """For each of n rows of the first set, its closest partner (ties: the lower index); rows
+    without one are left out. Sorted by row."""
+    if not len(pairs):
+        return pairs
+    order = np.lexsort((pairs.j, pairs.distance, pairs.i))
+    first = order[np.concatenate(([True], pairs.i[order][1:] != pairs.i[order][:-1]))]
+    if pairs.i[first].max() >= n:
+        raise ValueError(f"pairs name rows beyond {n}")
+    return ViewPairs(*(x[first] for x in pairs))
