@@ -39,7 +39,7 @@ from curate import similarity  # noqa: E402
 from curate.similarity import codes as codes_mod  # noqa: E402
 
 RADIUS = 8  # neardup's default radius (bits of 64)
-CHECK_RADIUS = 20  # unrelated codes differ by 32 +- 4 bits (binomial, 64 fair bits): 3 sigma below
+CHECK_RADIUS = similarity.CHECK_RADIUS  # the default; --check-radius measures others
 COSINE = 0.99  # neardup's default embedding cosine
 SETTINGS = {
     "default": similarity.CodeSettings(),
@@ -125,7 +125,35 @@ def evaluate(corpus: list[dict], s: similarity.CodeSettings, main: np.ndarray, c
         "signals": dict(collections.Counter(similarity.SIGNALS[x] for x in g.signal if x >= 0)),
         "union_find": union_find(corpus, s, main, check, sha, emb_pairs),
         "closest_distinct": closest_distinct(corpus, s, main, check),
+        "check_margin": check_margin(corpus, s, main, check),
     }
+
+
+def check_margin(corpus: list[dict], s: similarity.CodeSettings, main: np.ndarray, check: np.ndarray | None) -> dict:
+    """For pairs of files whose main codes match (some view pair within the radius): the closest
+    check codes among those view pairs, the largest over an original and its copy, and the smallest
+    over different photos. The check radius must sit between them."""
+    if check is None:
+        return {}
+    ident = similarity.identity_count(s)
+    photos = np.array([r["photo"] for r in corpus])
+    p = similarity.sample_pairs(main, RADIUS, ident)
+    # Swapped roles: the check codes' distance over view pairs whose main codes are within the radius.
+    d = similarity.min_distances(check[p.i], check[p.j], ident, main[p.i], main[p.j], RADIUS)
+    edits = np.array([r["edit"] for r in corpus])
+    same = (photos[p.i] == photos[p.j]) & ((edits[p.i] == "original") | (edits[p.j] == "original"))
+    stereo = np.isin(photos[p.i], list(photoset.STEREO_PAIR)) & np.isin(photos[p.j], list(photoset.STEREO_PAIR))
+    name = (lambda k: [f"{corpus[p.i[k]]['photo']}/{corpus[p.i[k]]['edit']}",  # noqa: E731
+                       f"{corpus[p.j[k]]['photo']}/{corpus[p.j[k]]['edit']}"])
+    out: dict[str, Any] = {}
+    if same.any():
+        k = np.flatnonzero(same)[np.argmax(d[same])]
+        out.update(copies_max_bits=int(d[k]), copies_max_pair=name(k))
+    diff = (photos[p.i] != photos[p.j]) & ~stereo
+    if diff.any():
+        k = np.flatnonzero(diff)[np.argmin(d[diff])]
+        out.update(distinct_min_bits=int(d[k]), distinct_min_pair=name(k), distinct_pairs=int(diff.sum()))
+    return out
 
 
 def union_find(corpus: list[dict], s: similarity.CodeSettings, main: np.ndarray, check: np.ndarray | None,
@@ -208,26 +236,35 @@ def _print_table(title: str, table: dict[str, dict[str, float | None]]) -> None:
 
 
 def main(argv: list[str] | None = None) -> int:
+    global CHECK_RADIUS
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--json", action="store_true", help="print one JSON line")
     ap.add_argument("--large", action="store_true", help="upscale originals 3x so JPEG draft decoding is exercised")
     ap.add_argument("--seed", type=int, default=0, help="seed of the random crops and stamp corners")
     ap.add_argument("--semantic", action="store_true", help="also link by demo-model embeddings (cosine >= 0.99)")
+    ap.add_argument("--settings", nargs="+", choices=list(SETTINGS), default=list(SETTINGS), help="code settings to run")
+    ap.add_argument("--check-radius", type=int, nargs="+", default=[CHECK_RADIUS],
+                    help="check radii to group with (each gives its own results)")
     args = ap.parse_args(argv)
 
     t0 = time.perf_counter()
     corpus = build_corpus(args.large, args.seed)
     result: dict[str, Any] = {"photos": len(photoset.PHOTOS), "files": len(corpus), "radius": RADIUS,
-                              "check_radius": CHECK_RADIUS, "settings": {}}
+                              "check_radius": args.check_radius, "settings": {}}
     coded = {}
-    for key, s in SETTINGS.items():
+    for key in args.settings:
+        s = SETTINGS[key]
         main_, check, ms = encode(corpus, s)
         coded[key] = (main_, check)
-        r = evaluate(corpus, s, main_, check)
-        r["codes_per_image"] = similarity.code_count(s)
-        r["hash_ms_per_image"] = round(ms, 2)
-        r["turn_x_crop_recall"] = turn_crop_table(r["recall_by_edit"])
-        result["settings"][key] = r
+        for cr in args.check_radius if check is not None else [CHECK_RADIUS]:
+            CHECK_RADIUS = cr
+            r = evaluate(corpus, s, main_, check)
+            r["codes_per_image"] = similarity.code_count(s)
+            r["hash_ms_per_image"] = round(ms, 2)
+            r["turn_x_crop_recall"] = turn_crop_table(r["recall_by_edit"])
+            name = key if len(args.check_radius) == 1 or check is None else f"{key}@check{cr}"
+            result["settings"][name] = r
+    CHECK_RADIUS = args.check_radius[0]
     if args.semantic:
         emb = embed_demo(corpus)
         photos = np.array([r["photo"] for r in corpus])
@@ -237,7 +274,7 @@ def main(argv: list[str] | None = None) -> int:
         for i, r in enumerate(corpus):
             if r["family"] != "original":
                 copy_cos[r["edit"]].append(float(sims[i, orig[r["photo"]]]))
-        for key in ("default", "turns"):
+        for key in [k for k in ("default", "turns") if k in coded]:
             r = evaluate(corpus, SETTINGS[key], *coded[key], emb=emb)
             r["turn_x_crop_recall"] = turn_crop_table(r["recall_by_edit"])
             result["settings"][f"{key}+demo_clip"] = r
@@ -267,6 +304,11 @@ def report(result: dict) -> None:
                   f"{k} {v['bits']} bits {' ~ '.join(v.get('pair', []))}" for k, v in cd.items()))
         if r["merged_groups"]:
             print(f"  merged: {r['merged_groups']}")
+        if r["check_margin"]:
+            m = r["check_margin"]
+            print(f"  check codes where main codes match: original-copy pairs up to {m.get('copies_max_bits')} bits "
+                  f"({' ~ '.join(m.get('copies_max_pair', []))}); {m.get('distinct_pairs', 0)} pairs of different photos, "
+                  f"closest {m.get('distinct_min_bits')} bits ({' ~ '.join(m.get('distinct_min_pair', []))})")
         print(f"  transforms matched: {r['matched_transforms']}; signals: {r['signals']}")
         everyday = [e for fam in photoset.TRANSFORMS.values() for e in fam]
         low = {e: round(r["recall_by_edit"][e], 3) for e in everyday if r["recall_by_edit"][e] < 1.0}

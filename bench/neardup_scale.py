@@ -15,7 +15,7 @@ when no better-ranked leader is within the radius, else belong to the best-ranke
 at the reported distance. ``brute_force_seconds`` is the brute-force pair scan over all samples,
 estimated from the rate of that check (or of FAISS's flat binary scan, whichever is faster).
 With ``--compare``, the same run also times the pair search alone (``range_pairs``, what this
-bench timed before groups had a diameter) and union-find components over the same links.
+bench timed before groups had a diameter; ``--components`` adds union-find components).
 With ``--faiss``, FAISS's IndexBinaryMultiHash range search is timed on the identity codes.
 
     .venv/bin/python bench/neardup_scale.py --n 1000000 --json
@@ -39,7 +39,7 @@ from curate import similarity  # noqa: E402
 from curate.similarity import hamming  # noqa: E402
 
 RADIUS = 8  # neardup's default radius (bits of 64)
-CHECK_RADIUS = 20  # the default check radius (bits of 64)
+CHECK_RADIUS = similarity.CHECK_RADIUS  # the default check radius (bits of 64)
 VIEW_FLIPS = 14  # bits between two views of one sample (median over the public photos' crop views)
 
 
@@ -141,18 +141,19 @@ def faiss_multihash(codes: np.ndarray, radius: int, nhash: int, nflip: int) -> t
 
 
 def compare(codes: np.ndarray, checks: np.ndarray | None, cr: int, ident: int | None, radius: int,
-            threads: int) -> dict:
-    """Pair search alone and union-find components over the same codes, timed in this run."""
+            threads: int, components: bool) -> dict:
+    """Pair search alone (and union-find components) over the same codes, timed in this run."""
     t = time.perf_counter()
     if codes.shape[1] == 1 and checks is None:
         p = similarity.range_pairs(codes[:, 0], radius, threads=threads)
     else:
         p = similarity.sample_pairs(codes, radius, ident, checks, cr, threads=threads)
-    search_s = time.perf_counter() - t
-    t = time.perf_counter()
-    similarity.sample_components(codes, radius, ident, checks, cr, threads=threads)
-    return {"search_only_seconds": round(search_s, 2), "components_seconds": round(time.perf_counter() - t, 2),
-            "sample_pairs": len(p)}
+    out = {"search_only_seconds": round(time.perf_counter() - t, 2), "sample_pairs": len(p)}
+    if components:
+        t = time.perf_counter()
+        similarity.sample_components(codes, radius, ident, checks, cr, threads=threads)
+        out["components_seconds"] = round(time.perf_counter() - t, 2)
+    return out
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -167,7 +168,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--threads", type=int, default=2, help="substring tables searched side by side")
     ap.add_argument("--seed", type=int, default=0)
     ap.add_argument("--check", type=int, default=0, help="rows checked against brute force (0: auto)")
-    ap.add_argument("--compare", action="store_true", help="also time pair search alone and components")
+    ap.add_argument("--compare", action="store_true", help="also time the pair search alone")
+    ap.add_argument("--components", action="store_true", help="with --compare: also union-find components")
     ap.add_argument("--faiss", action="store_true", help="also time FAISS IndexBinaryMultiHash (views=1 only)")
     ap.add_argument("--json", action="store_true", help="print one JSON line")
     args = ap.parse_args(argv)
@@ -206,7 +208,7 @@ def main(argv: list[str] | None = None) -> int:
         "peak_rss_mb": round(rss_search, 1), "rss_before_search_mb": round(rss_before, 1),
     }
     if args.compare:
-        result.update(compare(codes, checks, cr, ident, r, args.threads))
+        result.update(compare(codes, checks, cr, ident, r, args.threads, args.components))
     if args.faiss and k == 1:
         ref = similarity.range_pairs(codes[:, 0], r, threads=args.threads)
         want = set(zip(ref.i.tolist(), ref.j.tolist()))

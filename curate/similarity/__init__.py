@@ -18,6 +18,8 @@ from .codes import (
     identity_count,
     image_codes,
     matched_transform,
+    split_codes,
+    view_count,
     views,
 )
 from .cosine import cosine_pairs, cross_cosine
@@ -32,6 +34,8 @@ from .groups import (
     sample_components,
 )
 from .hamming import (
+    CHECK_RADIUS,
+    RADIUS,
     CodeGraph,
     Pairs,
     ViewPairs,
@@ -48,9 +52,11 @@ from .hamming import (
 )
 
 __all__ = [
-    "TRANSFORMS", "CodeSettings", "View", "code_count", "identity_count", "image_codes", "matched_transform", "views",
+    "TRANSFORMS", "CodeSettings", "View", "code_count", "identity_count", "image_codes", "matched_transform",
+    "split_codes", "view_count", "views",
     "cosine_pairs", "cross_cosine",
     "SIGNALS", "Groups", "Signals", "UnionFind", "components", "greedy_leaders", "group", "sample_components",
-    "CodeGraph", "Pairs", "ViewPairs", "closest", "code_graph", "cross_set_pairs", "cross_pairs", "min_distance", "min_distances",
-    "range_pairs", "sample_cross_pairs", "sample_pairs", "view_distances",
+    "CHECK_RADIUS", "RADIUS", "CodeGraph", "Pairs", "ViewPairs", "closest", "code_graph", "cross_pairs",
+    "cross_set_pairs", "min_distance", "min_distances", "range_pairs", "sample_cross_pairs", "sample_pairs",
+    "view_distances",
 ]

@@ -58,9 +58,9 @@ class CodeSettings:
     # draft decode hashes on the same grid (common practice; 8x imagehash's 32 px DCT input). 0 = off.
     work_size: int = 256
     # A second code per view, of another hash family ("dhash" or "phash"; "" = none), that a match
-    # must also pass on the same pair of views: two different pictures whose pHash views collide
-    # (measured: 6-8 bits apart among the public photos' crops and turns) differ by 27+ bits in
-    # dHash, copies by at most 18 (bench/neardup_quality.py).
+    # must also pass on the same pair of views (hamming.CHECK_RADIUS): among the public photos'
+    # crops and turns, different pictures' pHash views collide at 6-8 bits, but differ by 18 or
+    # more bits in dHash on those views (bench/neardup_quality.py).
     check: str = "dhash"
 
     def validate(self) -> None:

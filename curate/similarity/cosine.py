@@ -101,10 +101,12 @@ def cosine_pairs(emb: Any, threshold: float, clusters: int | None = None, probes
     return _sorted_pairs(i[first], j[first], d[first])
 
 
-def cross_cosine(a: Any, b: Any, threshold: float, block: int = 4096) -> Pairs:
-    """Every (i in a, j in b) with cosine(a_i, b_j) >= threshold, exactly (blocked matrix products)."""
+def cross_cosine(a: Any, b: Any, threshold: float, block: int | None = None) -> Pairs:
+    """Every (i in a, j in b) with cosine(a_i, b_j) >= threshold, exactly (blocked matrix products;
+    ``block`` rows of a at a time, default BLOCK similarities per block)."""
     a = np.ascontiguousarray(a, dtype=np.float32)
     b = np.ascontiguousarray(b, dtype=np.float32)
+    block = block or max(1, BLOCK // max(b.shape[0], 1))
     ii, jj, ss = [], [], []
     for s in range(0, a.shape[0], block):
         sim = a[s : s + block] @ b.T

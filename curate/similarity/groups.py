@@ -1,10 +1,11 @@
 """Grouping: connected components (union-find) and near-duplicate groups with a kept sample.
 
-``leader_groups`` forms groups that do not chain. Samples are visited in the caller's keeper order
+``group`` forms groups that do not chain. Samples are visited in the caller's keeper order
 (``rank``, lower = better copy); a sample no earlier leader has claimed becomes a leader (a kept
 sample), and every unclaimed sample linked directly to it joins its group. So every member is
-linked to its own kept sample by one of the signals (same bytes, codes within the radius, cosine
-at or above the threshold), never only through other members. The result equals that sequential
+linked to its own kept sample by one of the signals (same bytes; a view pair within the radius
+whose check codes pass, see ``hamming``; cosine at or above the threshold), never only through
+other members. The result equals that sequential
 visit exactly; it is computed in parallel rounds (a sample is decided once every better-ranked
 neighbour is), with the sequential visit finishing what long chains leave after ``max_rounds``.
 """
@@ -15,7 +16,14 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from .hamming import BITS, CodeGraph, code_graph, valid_radius, view_distances
+from .hamming import (
+    CHECK_RADIUS,
+    RADIUS,
+    CodeGraph,
+    code_graph,
+    valid_radius,
+    view_distances,
+)
 
 INF = np.iinfo(np.int64).max
 # Signal codes, strongest first: a member is reported under the strongest signal linking it to its leader.
@@ -87,7 +95,7 @@ def graph_components(n: int, graph: CodeGraph) -> np.ndarray:
 
 
 def sample_components(codes2d: Any, radius: int, identity: int | None = None, checks: Any = None,
-                      check_radius: int = BITS, substrings: int | None = None, threads: int = 1) -> np.ndarray:
+                      check_radius: int = CHECK_RADIUS, substrings: int | None = None, threads: int = 1) -> np.ndarray:
     """Component label of each row: rows are linked when their sample distance is within ``radius``.
 
     Works on distinct codes, so a picture held by many rows costs no more than a single one.
@@ -329,9 +337,9 @@ class Signals:
     codes: Any = None  # uint64[n, K]: perceptual codes, identity views first
     has_codes: Any = None  # bool[n]: rows whose codes are valid (None: all)
     identity: int | None = None  # leading identity views per row (None: every view)
-    radius: int = 8  # Hamming radius of the codes signal (bits)
+    radius: int = RADIUS  # Hamming radius of the codes signal (bits)
     checks: Any = None  # uint64[n, K]: a check code per view (None: none)
-    check_radius: int = BITS  # a view pair counts only when its check codes are this close (bits)
+    check_radius: int = CHECK_RADIUS  # a view pair counts only when its check codes are this close (bits)
     emb_pairs: Any = None  # (i, j, cosine) arrays: embedding links, e.g. from cosine.cosine_pairs
     emb: Any = None  # float32[n, D]: L2-normalised embeddings, to report the distance of an embedding link
 

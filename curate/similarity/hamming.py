@@ -5,7 +5,9 @@ multi-index hashing (``mih``). Samples hold K codes, identity views first (``cod
 samples' distance is the smallest distance over view pairs in which at least one view is an
 identity view: a transformed view is compared with the other sample's untransformed views, never
 with its transformed ones. Every mirrored or turned copy is still found (its identity views meet
-the original's transformed views, or the reverse), at a fraction of the all-pairs cost.
+the original's transformed views, or the reverse), at a fraction of the all-pairs cost. With
+check codes (a second hash family per view), a view pair counts only when its check codes are
+within ``check_radius`` too.
 """
 from __future__ import annotations
 
@@ -16,6 +18,15 @@ import numpy as np
 from . import mih
 
 BITS = mih.BITS
+# Default radius of the main codes: copies of a picture are within 8 bits of 64 at the closest view
+# pair, different photos 12 or more apart (bench/neardup_quality.py); common practice puts likely
+# variants at up to about 10 bits of a 64-bit hash.
+RADIUS = 8
+# Default radius of the check codes: codes of unrelated pictures differ by 32 +- 4 bits (64 fair
+# bits, simple arithmetic); 16 is four standard deviations below. Measured on the public photos
+# (bench/neardup_quality.py): different photos whose main codes match come within 18 bits, so 20
+# (three deviations) let one pair through; at 16 none, and one more 8-10% one-sided crop in 20 is missed.
+CHECK_RADIUS = 16
 
 
 class Pairs(NamedTuple):
@@ -94,7 +105,7 @@ def _allowed(k_a: int, k_b: int, identity: int | None) -> np.ndarray:
 
 
 def view_distances(a2d: Any, b2d: Any, identity: int | None = None, checks_a: Any = None, checks_b: Any = None,
-                   check_radius: int = BITS) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+                   check_radius: int = CHECK_RADIUS) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Row-wise sample distance of two (n, K) arrays, and the views of a and b that gave it.
 
     ``identity``: how many leading views are untransformed (None: all). With check codes, only view
@@ -121,14 +132,14 @@ def view_distances(a2d: Any, b2d: Any, identity: int | None = None, checks_a: An
 
 
 def min_distance(a: Any, b: Any, identity: int | None = None, checks_a: Any = None, checks_b: Any = None,
-                 check_radius: int = BITS) -> int:
+                 check_radius: int = CHECK_RADIUS) -> int:
     """Distance of two samples' codes (1-D arrays): the closest allowed view pair."""
     row = (lambda x: None if x is None else np.asarray(x).ravel()[None, :])  # noqa: E731
     return int(view_distances(row(a), row(b), identity, row(checks_a), row(checks_b), check_radius)[0][0])
 
 
 def min_distances(a2d: Any, b2d: Any, identity: int | None = None, checks_a: Any = None, checks_b: Any = None,
-                  check_radius: int = BITS) -> np.ndarray:
+                  check_radius: int = CHECK_RADIUS) -> np.ndarray:
     """Row-wise ``min_distance`` of two (n, K) code arrays."""
     return view_distances(a2d, b2d, identity, checks_a, checks_b, check_radius)[0]
 
@@ -270,7 +281,7 @@ def _checked(parts: list[tuple], check_radius: int) -> list[tuple]:
 
 
 def sample_pairs(codes2d: Any, radius: int, identity: int | None = None, checks: Any = None,
-                 check_radius: int = BITS, substrings: int | None = None, threads: int = 1) -> ViewPairs:
+                 check_radius: int = CHECK_RADIUS, substrings: int | None = None, threads: int = 1) -> ViewPairs:
     """Every pair of rows i < j within ``radius`` by the sample distance (see the module); exact.
 
     ``identity``: how many leading columns are untransformed views (None: all of them).
@@ -298,7 +309,7 @@ def sample_pairs(codes2d: Any, radius: int, identity: int | None = None, checks:
 
 
 def sample_cross_pairs(codes2d_a: Any, codes2d_b: Any, radius: int, identity: int | None = None,
-                       checks_a: Any = None, checks_b: Any = None, check_radius: int = BITS,
+                       checks_a: Any = None, checks_b: Any = None, check_radius: int = CHECK_RADIUS,
                        substrings: int | None = None, threads: int = 1) -> ViewPairs:
     """Every (row of a, row of b) within ``radius`` by the sample distance; exact."""
     r = valid_radius(radius)
@@ -388,7 +399,7 @@ def _token_pairs(pa: np.ndarray, ca: np.ndarray, pb: np.ndarray | None, cb: np.n
 
 
 def code_graph(codes2d: Any, radius: int, identity: int | None = None, checks: Any = None,
-               check_radius: int = BITS, substrings: int | None = None, threads: int = 1) -> CodeGraph:
+               check_radius: int = CHECK_RADIUS, substrings: int | None = None, threads: int = 1) -> CodeGraph:
     """The ``CodeGraph`` of (n, K) sample codes at ``radius``; exact (multi-index search)."""
     r = valid_radius(radius)
     ids, trs, ident = _split_views(codes2d, identity)
@@ -416,7 +427,7 @@ def code_graph(codes2d: Any, radius: int, identity: int | None = None, checks: A
 
 
 def cross_set_pairs(codes_a: Any, codes_b: Any, radius: int, identity: int | None = None, ok_a: Any = None,
-                    ok_b: Any = None, checks_a: Any = None, checks_b: Any = None, check_radius: int = BITS,
+                    ok_b: Any = None, checks_a: Any = None, checks_b: Any = None, check_radius: int = CHECK_RADIUS,
                     substrings: int | None = None, threads: int = 1) -> ViewPairs:
     """Every (row of a, row of b) within ``radius`` among rows whose codes are valid (``ok_*``,
     None: all); indices into the full arrays. Leak checks and eval-set decontamination use this."""
