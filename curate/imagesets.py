@@ -274,8 +274,11 @@ def code_settings(hcfg: Any) -> similarity.CodeSettings:
         return hcfg
     names = {f.name for f in dataclasses.fields(similarity.CodeSettings)}
     kw = {k: getattr(hcfg, k) for k in names if hasattr(hcfg, k)}
-    if "transforms" not in kw:  # a section from before transforms: `flip` meant the mirror view
+    # A section from before transforms and check codes makes the codes it always made: `flip`
+    # meant the mirror view, and there was no check code.
+    if "transforms" not in kw:
         kw["transforms"] = ["mirror"] if getattr(hcfg, "flip", False) else []
+    kw.setdefault("check", "")
     return similarity.CodeSettings(**{k: list(v) if isinstance(v, (list, tuple)) else v for k, v in kw.items()})
 
 
@@ -335,14 +338,26 @@ class SetCodes:
     ok: np.ndarray
     problems: list[str | None]
     computed: int  # entries hashed now (the rest came from the cache)
-    views: list[similarity.View] | None = None  # each code's view (None: every code an identity view)
+    settings: similarity.CodeSettings | None = None  # what made the codes (None: one code per view, all identity)
+
+    @property
+    def views(self) -> list[similarity.View] | None:
+        return None if self.settings is None else similarity.views(self.settings)
 
     @property
     def identity(self) -> int | None:
-        """How many leading codes are identity views (None: all)."""
-        if self.views is None:
-            return None
-        return sum(v.transform == "identity" for v in self.views)
+        """How many leading views are identity views (None: all)."""
+        return None if self.settings is None else similarity.identity_count(self.settings)
+
+    @property
+    def main(self) -> np.ndarray:
+        """(n, views) main codes."""
+        return self.codes if self.settings is None else similarity.split_codes(self.codes, self.settings)[0]
+
+    @property
+    def checks(self) -> np.ndarray | None:
+        """(n, views) check codes, or None."""
+        return None if self.settings is None else similarity.split_codes(self.codes, self.settings)[1]
 
 
 def _cache_file(cache_dir: str, root: str, what: str, settings_key: Any) -> Path:
@@ -420,7 +435,7 @@ def set_codes(images: ImageSet, settings: HashSettings, *, cache_dir: str | None
         if v is not None and len(v) == k:
             codes[i] = np.asarray(v, dtype=np.uint64)
             ok[i] = True
-    return SetCodes(images, codes, ok, problems, computed, similarity.views(settings.code_settings()))
+    return SetCodes(images, codes, ok, problems, computed, settings.code_settings())
 
 
 def _map_chunks(images: ImageSet, idx: list[int], fn: Callable, args: tuple, workers: int) -> list:

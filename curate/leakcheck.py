@@ -73,7 +73,8 @@ def leakcheck(a: str | Path, b: str | Path, *, radius: int | None = None, semant
         sets.append(s)
         codes.append(sc)
     t = time.perf_counter()
-    pairs = cross_set_pairs(codes[0], codes[1], r)
+    check_r = getattr(getattr(cfg, "neardup", None), "check_radius", similarity.CHECK_RADIUS)
+    pairs = cross_set_pairs(codes[0], codes[1], r, int(check_r))
     timings["search"] = time.perf_counter() - t
     if semantic:
         t = time.perf_counter()
@@ -128,10 +129,12 @@ def _unreadable(sc: imagesets.SetCodes) -> list[dict]:
             for i in np.nonzero(~sc.ok)[0].tolist()]
 
 
-def cross_set_pairs(a: imagesets.SetCodes, b: imagesets.SetCodes, radius: int) -> list[dict]:
-    """Exact cross-set search over the images that hashed; distance = closest allowed view pair,
-    `transform` = what takes the picture in A to the one in B ("identity", "mirror", "rot90", ...)."""
-    p = similarity.cross_set_pairs(a.codes, b.codes, radius, a.identity, a.ok, b.ok)
+def cross_set_pairs(a: imagesets.SetCodes, b: imagesets.SetCodes, radius: int,
+                    check_radius: int = similarity.CHECK_RADIUS) -> list[dict]:
+    """Exact cross-set search over the images that hashed; distance = closest allowed view pair
+    (whose check codes pass, where the codes have them), `transform` = what takes the picture in A
+    to the one in B ("identity", "mirror", "rot90", ...)."""
+    p = similarity.cross_set_pairs(a.main, b.main, radius, a.identity, a.ok, b.ok, a.checks, b.checks, check_radius)
     out = []
     for i, j, d, va, vb in zip(*(np.asarray(x).tolist() for x in p)):
         transform = similarity.matched_transform(a.views, va, vb) if a.views is not None else "identity"

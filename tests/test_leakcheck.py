@@ -28,11 +28,11 @@ sys.path.insert(0, str(ROOT / "sample_corpus"))
 # --------------------------------------------------------------------------- oracle on random codes
 
 
-def _set_codes(codes: np.ndarray, tag: str, views: list | None = None) -> imagesets.SetCodes:
+def _set_codes(codes: np.ndarray, tag: str, settings: similarity.CodeSettings | None = None) -> imagesets.SetCodes:
     n = codes.shape[0]
     names = [f"{tag}{i}" for i in range(n)]
     s = imagesets.ImageSet(f"/{tag}", "folder", names, names, [(0, 0)] * n, [None] * n)
-    return imagesets.SetCodes(s, codes, np.ones(n, bool), [None] * n, 0, views)
+    return imagesets.SetCodes(s, codes, np.ones(n, bool), [None] * n, 0, settings)
 
 
 @pytest.mark.parametrize("seed", [0, 1, 2])
@@ -64,7 +64,10 @@ def test_cross_search_with_transformed_views_equals_python_oracle():
     # Oracle as above, over the allowed view pairs only: two identity views and one mirror view per
     # image; a mirror view is compared with the other image's identity views, never with its mirror.
     rng = np.random.default_rng(7)
-    views = [similarity.View("identity", (0.0, 0.0, 1.0, 1.0))] * 2 + [similarity.View("mirror", (0.0, 0.0, 1.0, 1.0))]
+    # Two identity views (whole, 92% centre) and the whole picture's mirror view; no check codes.
+    views = similarity.CodeSettings(scales=[1.0, 0.92], side_scale=0, transforms=["mirror"], transform_boxes="whole",
+                                    check="")
+    assert [v.transform for v in similarity.views(views)] == ["identity", "identity", "mirror"]
     a = rng.integers(0, 2**64 - 1, size=(150, 3), dtype=np.uint64)
     b = rng.integers(0, 2**64 - 1, size=(100, 3), dtype=np.uint64)
     for j in range(30):  # planted: b's identity views near a's mirror view, or the reverse
