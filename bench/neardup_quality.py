@@ -43,7 +43,9 @@ CHECK_RADIUS = similarity.CHECK_RADIUS  # the default; --check-radius measures o
 COSINE = 0.99  # neardup's default embedding cosine
 SETTINGS = {
     "default": similarity.CodeSettings(),
+    "default_whole": similarity.CodeSettings(transform_boxes="whole"),
     "turns": similarity.CodeSettings(transforms=["mirror", "rot90", "rot180", "rot270"]),
+    "turns_whole": similarity.CodeSettings(transforms=["mirror", "rot90", "rot180", "rot270"], transform_boxes="whole"),
     "turns_no_check": similarity.CodeSettings(transforms=["mirror", "rot90", "rot180", "rot270"], check=""),
     "plain_phash": similarity.CodeSettings(scales=[1.0], side_scale=0.0, corner_mask=0.0, transforms=[], check="",
                                            work_size=0),

@@ -286,23 +286,21 @@ def sample_pairs(codes2d: Any, radius: int, identity: int | None = None, checks:
 
     ``identity``: how many leading columns are untransformed views (None: all of them).
     ``checks``: a second code per view; a view pair counts only when those are within ``check_radius``.
+    One search over every view's code, then the pairs of two transformed views are dropped: on this
+    engine that costs less than a search of the identity views plus one of them against the rest.
     """
     r = valid_radius(radius)
-    ids, trs, ident = _split_views(codes2d, identity)
-    chk = _checks_like(checks, codes2d)
-    fi, oi, vi = _flatten(ids)
-    p = range_pairs(fi, r, substrings, threads)
-    ci = None if chk is None else as_codes(chk[:, :ident].reshape(-1))
-    parts = [(oi[p.i], oi[p.j], p.distance, vi[p.i], vi[p.j], *((ci[p.i], ci[p.j]) if ci is not None else (None, None)))]
-    if trs.shape[1]:
-        ft, ot, vt = _flatten(trs, ident)
-        q = cross_pairs(fi, ft, r, substrings, threads)
-        ct = None if chk is None else as_codes(chk[:, ident:].reshape(-1))
-        parts.append((oi[q.i], ot[q.j], q.distance, vi[q.i], vt[q.j],
-                      *((ci[q.i], ct[q.j]) if ci is not None else (None, None))))
-    a, b, d, va, vb = (np.concatenate(x) for x in zip(*_checked(parts, check_radius)))
-    keep = a != b
-    a, b, d, va, vb = a[keep], b[keep], d[keep], va[keep], vb[keep]
+    c = _rows(codes2d)
+    _, _, ident = _split_views(c, identity)
+    chk = _checks_like(checks, c)
+    flat, owner, view = _flatten(c)
+    p = range_pairs(flat, r, substrings, threads)
+    ok = ((view[p.i] < ident) | (view[p.j] < ident)) & (owner[p.i] != owner[p.j])
+    if chk is not None:
+        cf = as_codes(chk.reshape(-1))
+        ok &= hamming(cf[p.i], cf[p.j]) <= check_radius
+    i, j, d = p.i[ok], p.j[ok], p.distance[ok]
+    a, b, va, vb = owner[i], owner[j], view[i], view[j]
     swap = a > b
     return _best_per_pair(np.where(swap, b, a), np.where(swap, a, b), d, np.where(swap, vb, va),
                           np.where(swap, va, vb), ident)
@@ -340,8 +338,8 @@ def sample_cross_pairs(codes2d_a: Any, codes2d_b: Any, radius: int, identity: in
 
 
 class CodeGraph(NamedTuple):
-    """Links between samples through their distinct identity views ("tokens": a main code with its
-    check code).
+    """Links between samples through their distinct views ("tokens": a main code with its check
+    code).
 
     Samples s and t are within the radius exactly when one of them owns a token that the other
     owns, or that is within the radius of one the other owns (an edge), or when a transformed view
@@ -350,7 +348,7 @@ class CodeGraph(NamedTuple):
     token, not a quadratic number of pairs.
     """
 
-    tokens: int  # number of distinct identity tokens
+    tokens: int  # number of distinct tokens
     own_s: np.ndarray  # sample s owns token own_u (unique pairs)
     own_u: np.ndarray
     reach_s: np.ndarray  # a transformed view of sample reach_s is within the radius of token reach_u
@@ -398,29 +396,45 @@ def _token_pairs(pa: np.ndarray, ca: np.ndarray, pb: np.ndarray | None, cb: np.n
     return x[ok].astype(np.int64), y[ok].astype(np.int64)
 
 
+def _reaches(x: np.ndarray, y: np.ndarray, has_id: np.ndarray, has_t: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(transformed token, identity token) links from token pairs x-y, and from tokens that are both."""
+    both = np.flatnonzero(has_id & has_t)
+    a = has_t[x] & has_id[y]
+    b = has_t[y] & has_id[x]
+    return np.concatenate([x[a], y[b], both]), np.concatenate([y[a], x[b], both])
+
+
 def code_graph(codes2d: Any, radius: int, identity: int | None = None, checks: Any = None,
                check_radius: int = CHECK_RADIUS, substrings: int | None = None, threads: int = 1) -> CodeGraph:
-    """The ``CodeGraph`` of (n, K) sample codes at ``radius``; exact (multi-index search)."""
+    """The ``CodeGraph`` of (n, K) sample codes at ``radius``; exact (multi-index search).
+
+    Tokens are the distinct views of every kind; one search over all of them, then pairs of two
+    identity tokens become edges and pairs of a transformed with an identity token become reaches.
+    """
     r = valid_radius(radius)
-    ids, trs, ident = _split_views(codes2d, identity)
-    chk = _checks_like(checks, codes2d)
-    fi, oi, _ = _flatten(ids)
-    tp, tc, inv = _tokens(fi, None if chk is None else as_codes(chk[:, :ident].reshape(-1)))
-    own_s, own_u = _unique_pairs(oi, inv, tp.shape[0])
-    eu, ev = _token_pairs(tp, tc, None, None, r, check_radius, substrings, threads)
-    eu, ev = np.minimum(eu, ev), np.maximum(eu, ev)
-    reach_s = reach_u = np.empty(0, np.int64)
-    if trs.shape[1]:
-        ft, ot, _ = _flatten(trs)
-        xp, xc, xinv = _tokens(ft, None if chk is None else as_codes(chk[:, ident:].reshape(-1)))
-        ti, tu = _token_pairs(xp, xc, tp, tc, r, check_radius, substrings, threads)
-        order, starts, counts = _members(xinv, xp.shape[0])
-        # Every sample holding a transformed token reaches the identity tokens near it.
-        per = counts[ti]
-        src = np.repeat(np.arange(ti.shape[0]), per)
-        pos = np.repeat(starts[ti], per) + (np.arange(src.shape[0]) - np.repeat(np.cumsum(per) - per, per))
-        reach_s, reach_u = _unique_pairs(ot[order[pos]], tu[src], tp.shape[0])
-    return CodeGraph(int(tp.shape[0]), own_s, own_u, reach_s, reach_u, eu, ev)
+    c = _rows(codes2d)
+    _, _, ident = _split_views(c, identity)
+    chk = _checks_like(checks, c)
+    flat, owner, view = _flatten(c)
+    is_id = view < ident
+    tp, tc, inv = _tokens(flat, None if chk is None else as_codes(chk.reshape(-1)))
+    t = tp.shape[0]
+    has_id = np.zeros(t, bool)
+    has_id[inv[is_id]] = True
+    has_t = np.zeros(t, bool)
+    has_t[inv[~is_id]] = True
+    own_s, own_u = _unique_pairs(owner[is_id], inv[is_id], t)
+    x, y = _token_pairs(tp, tc, None, None, r, check_radius, substrings, threads)
+    e = has_id[x] & has_id[y]
+    eu, ev = np.minimum(x[e], y[e]), np.maximum(x[e], y[e])
+    rt, ru = _reaches(x, y, has_id, has_t)
+    # Every sample holding a transformed token reaches the identity tokens linked to it.
+    order, starts, counts = _members(inv[~is_id], t)
+    per = counts[rt]
+    src = np.repeat(np.arange(rt.shape[0]), per)
+    pos = np.repeat(starts[rt], per) + (np.arange(src.shape[0]) - np.repeat(np.cumsum(per) - per, per))
+    reach_s, reach_u = _unique_pairs(owner[~is_id][order[pos]], ru[src], t)
+    return CodeGraph(int(t), own_s, own_u, reach_s, reach_u, eu.astype(np.int64), ev.astype(np.int64))
 
 
 # --------------------------------------------------------------------------- two sets
