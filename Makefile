@@ -16,6 +16,7 @@ demo: $(BIN)/curate
 	$(BIN)/curate run sample_corpus/curate.toml --out demo_out
 
 test: $(BIN)/curate
+	$(BIN)/ruff check .
 	$(BIN)/python -m pytest -q -p no:cacheprovider
 
 test-all: $(BIN)/curate

@@ -33,10 +33,10 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(ROOT / "bench"))
 
-import photoset  # noqa: E402
-
 from curate import similarity  # noqa: E402
 from curate.similarity import codes as codes_mod  # noqa: E402
+
+import photoset  # noqa: E402
 
 RADIUS = 8  # neardup's default radius (bits of 64)
 CHECK_RADIUS = similarity.CHECK_RADIUS  # the default; --check-radius measures others

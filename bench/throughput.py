@@ -186,10 +186,9 @@ def int8_agreement_check(corpus: Path, threads: int) -> dict:
     """Largest |agreement(int8) - agreement(fp32)| for the demo model over the corpus's images."""
     import numpy as np
 
+    from curate.config import load_config
     from curate.stages import agreement, embed
     from curate.stages.base import StageContext
-
-    from curate.config import load_config
 
     exts = {".jpg", ".jpeg", ".png", ".webp"}
     items = []

@@ -28,6 +28,10 @@ CHECK_TYPE = pa.struct(
 )
 CHECKS_TYPE = pa.list_(CHECK_TYPE)
 
+# What a failed check can do to its sample (curate.decide): drop it, flag it for review, ignore it,
+# send it to the quarantine shards, or redact what it found in the output.
+ACTIONS = ("drop", "flag", "keep", "quarantine", "redact")
+
 # Pass conditions a record may state.
 OPS = {">=": operator.ge, "<=": operator.le, ">": operator.gt, "<": operator.lt, "==": operator.eq,
        "!=": operator.ne}
@@ -77,3 +81,39 @@ def format_condition(rec: dict) -> str:
     if rec.get("op") is None or rec.get("threshold") is None:
         return ""
     return f"{rec['op']} {format_number(rec['threshold'], rec.get('unit'))}"
+
+
+def columnar(n: int, present: Any, records: list[dict]) -> pa.ListArray:
+    """A check column built without one Python dict per row: every row where `present` is true gets
+    the same records, in order; the others get none. Each record is a dict of check() fields whose
+    values are scalars or arrays of length n (value/threshold floats, failed bools, detail strings)."""
+    import numpy as np
+
+    present = np.asarray(present, dtype=bool)
+    rows = np.flatnonzero(present)
+    k = len(records)
+    fields = []
+    for name, typ in ((f.name, f.type) for f in CHECK_TYPE):
+        parts = []
+        for rec in records:
+            v = rec.get(name)
+            if isinstance(v, (np.ndarray, list, pa.Array)):
+                arr = np.asarray(v, dtype=object if pa.types.is_string(typ) else None)[rows]
+                if pa.types.is_floating(typ):
+                    arr = arr.astype(np.float64)
+                    part = pa.array(arr, typ, mask=~np.isfinite(arr))
+                else:
+                    part = pa.array(arr, typ)
+            else:
+                if pa.types.is_floating(typ) and v is not None and not math.isfinite(float(v)):
+                    v = None
+                part = pa.array([v] * len(rows), typ)
+            parts.append(part)
+        # interleave: row r's records are consecutive
+        stacked = pa.concat_arrays(parts) if parts else pa.array([], typ)
+        order = (np.arange(k)[None, :] * len(rows) + np.arange(len(rows))[:, None]).reshape(-1)
+        fields.append(stacked.take(pa.array(order, pa.int64())) if len(order) else stacked)
+    values = pa.StructArray.from_arrays(fields, fields=list(CHECK_TYPE))
+    counts = present.astype(np.int64) * k
+    offsets = np.concatenate([[0], np.cumsum(counts)]).astype(np.int32)
+    return pa.ListArray.from_arrays(pa.array(offsets, pa.int32()), values)

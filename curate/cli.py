@@ -13,6 +13,8 @@ from typing import Any
 
 from . import __version__
 from .errors import CurateError
+from .terminal import escape as _e
+from .terminal import log_to_stderr
 
 
 def _cmd_run(a: argparse.Namespace) -> int:
@@ -21,30 +23,36 @@ def _cmd_run(a: argparse.Namespace) -> int:
 
     progress = BarProgress() if (not a.quiet and sys.stderr.isatty()) else NullProgress()
     res = api.run(a.config, out=a.out, input=a.input, sets=a.set, engine=a.engine, eval_sets=a.eval_set,
-                  progress=progress)
-    summary = json.loads((Path(a.out) / "summary.json").read_text())
+                  decisions=a.decisions, progress=progress)
+    summary = json.loads((Path(res.out_dir) / "summary.json").read_text())
     if a.json:
         print(json.dumps({"out": res.out_dir, "summary": summary, "ran": res.ran, "reused": res.reused}))
         return 0
     print(f"curate {__version__}: {res.samples} samples in {res.shards} shard(s)")
-    for stage in res.seconds:
-        if stage in ("list", "pack"):
-            continue
-        ran, reused = res.ran.get(stage, 0), res.reused.get(stage, 0)
-        print(f"  {stage:<16} {res.seconds[stage]:7.2f}s  computed {ran}, reused {reused} shard(s)")
-    print(f"  {'outputs':<16} {res.seconds.get('pack', 0.0):7.2f}s  ledger, shards, manifest, summary, report")
+    for names, kind, secs in res.passes:
+        ran, reused = res.ran.get(names[0], 0), res.reused.get(names[0], 0)
+        what = f"computed {ran}, reused {reused} shard(s)" if kind == "shard" else ("computed" if ran else "reused")
+        label = _e(", ".join(names))
+        print(f"  {label:<32}{secs:7.2f}s  {what}")
+    print(f"  {'outputs':<32}{res.seconds.get('pack', 0.0):7.2f}s  ledger, shards, manifest, summary, report")
     print(f"kept {summary['kept']} of {summary['samples']} ({100 * summary['kept_fraction']:.1f}%)")
+    if summary.get("agreement", {}).get("fit_auc") is not None:
+        ag = summary["agreement"]
+        verdict = "applied" if ag["reliable"] else f"NOT applied (below {ag['min_fit_auc']:g}): model out of its depth"
+        thr = f", threshold {ag['threshold']:.3f}" if ag["reliable"] and ag["threshold"] is not None else ""
+        print(f"agreement: model fit on this corpus ROC AUC {ag['fit_auc']:.3f} (true vs shuffled captions); "
+              f"{verdict}{thr}")
     if summary["by_reason"]:
         print("drops by reason (a sample may have several):")
         for code, n in summary["by_reason"].items():
-            print(f"  {code:<22} {n}")
+            print(f"  {_e(code):<22} {n}")
     if summary["by_flag"]:
         print("flags (for human review):")
         for code, n in summary["by_flag"].items():
-            print(f"  {code:<22} {n}")
+            print(f"  {_e(code):<22} {n}")
     if summary.get("by_split"):
         print("split: " + ", ".join(f"{k} {v}" for k, v in sorted(summary["by_split"].items())))
-    out = res.out_dir
+    out = _e(res.out_dir)
     print(f"shards:   {out}/shards/\nledger:   {out}/ledger.parquet\nsummary:  {out}/summary.json\n"
           f"report:   {out}/report.html")
     if res.cleared_stale_lock:
@@ -60,33 +68,88 @@ def _cmd_explain(a: argparse.Namespace) -> int:
         print(json.dumps(info, default=str))
         return 0
     verdict = "KEPT" if info["kept"] else "DROPPED"
-    print(f"sample  {info['sample_id']}  {info['source']}")
+    print(f"sample  {_e(info['sample_id'])}  {_e(info['source'])}")
     print(f"caption {_short(info['caption'], 100)!s}")
-    print(f"size    {info['width']}x{info['height']}  format {info['format']}  bytes {info['file_bytes']}")
-    print(f"verdict {verdict}" + (f"  reasons: {', '.join(info['reasons'])}" if info["reasons"] else "")
-          + (f"  flags: {', '.join(info['flags'])}" if info["flags"] else ""))
+    print(f"size    {info['width']}x{info['height']}  format {_e(info['format'])}  bytes {info['file_bytes']}")
+    print(f"verdict {verdict}" + (f"  reasons: {_e(', '.join(info['reasons']))}" if info["reasons"] else "")
+          + (f"  flags: {_e(', '.join(info['flags']))}" if info["flags"] else ""))
     if info.get("split"):
-        print(f"split   {info['split']}")
+        print(f"split   {_e(info['split'])}")
     print()
-    print(f"{'stage':<16}{'check':<34}{'value':<26}{'threshold':<22}verdict")
+    print(f"{'stage':<16}{'check':<22}{'value':<30}{'passes when':<18}verdict")
     for c in info["checks"]:
-        v = "fail" if c["failed"] else "pass"
-        if c["failed"]:
+        v = c["status"]
+        if c["status"] == "fail":
             v += f" -> {c['action']}"
-        print(f"{c['stage']:<16}{_short(c['code'], 33):<34}{_short(c['value'], 25):<26}"
-              f"{_short(c['threshold'], 21):<22}{v}")
+        value = c["value_text"] if c["value"] is None or not c["detail"] else f"{c['value_text']} ({c['detail']})"
+        print(f"{_e(c['stage']):<16}{_short(c['code'], 21):<22}{_short(value, 29):<30}"
+              f"{_short(c['condition'], 17):<18}{v}")
     if info["group"]:
-        print(f"\nnear-duplicate group {info['group_id']} ({len(info['group'])} members):")
+        print(f"\nnear-duplicate group {_e(info['group_id'])} ({len(info['group'])} members):")
         for m in info["group"]:
             mark = "kept   " if m["kept"] else "dropped"
-            d = "" if m["dup_of"] is None else f" dup of {m['dup_of']} by {m['dup_signal']} at {m['dup_distance']}"
-            print(f"  {mark} {m['sample_id']} {m['source']} {m['width']}x{m['height']}{d}")
+            d = "" if m["dup_of"] is None else (f" copy of {m['dup_of']} by {m['dup_signal']} at {m['dup_distance']:g}"
+                                                + (f"; kept copy wins on {m['keep_reason']}" if m.get("keep_reason")
+                                                   else ""))
+            print(f"  {mark} {_e(m['sample_id'])} {_e(m['source'])} {m['width']}x{m['height']}{_e(d)}")
     return 0
 
 
 def _short(v: Any, n: int) -> str:
-    s = "" if v is None else str(v)
+    s = "" if v is None else _e(v)
     return s if len(s) <= n else s[: n - 1] + "…"
+
+
+def _cmd_ledger(a: argparse.Namespace) -> int:
+    from . import api
+
+    sys.stdout.write(api.ledger(a.out, reason=a.reason, flag=a.flag, kept=a.kept, split=a.split, columns=a.columns,
+                                format=a.format, limit=a.limit))
+    return 0
+
+
+def _cmd_review(a: argparse.Namespace) -> int:
+    from . import api
+
+    res = api.review(a.run_dir, reason=a.reason, flag=a.flag, group=a.group, limit=a.limit, out=a.out)
+    print(f"{res['rows']} of {res['matched']} sample(s) to review")
+    print(f"decisions: {_e(res['decisions'])}  (edit decision keep|drop and note)")
+    print(f"sheet:     {_e(res['sheet'])}")
+    return 0
+
+
+def _add_review_and_ledger(sub: Any) -> None:
+    rv = sub.add_parser("review", help="write a decisions file to fill in and a contact sheet to look at",
+                        description="Pick samples of a finished run and write a decisions file (CSV or JSON Lines "
+                                    "by --out's extension: sample_id, source, decision pre-filled with today's "
+                                    "verdict, note) and an HTML contact sheet beside it (same name, .html) with the "
+                                    "same samples in the same order. Without filters: every dropped, flagged or "
+                                    "quarantined sample. Apply the edited file with `curate run ... --decisions`.")
+    rv.add_argument("run_dir", metavar="DIR", help="output directory of a finished run")
+    rv.add_argument("--reason", metavar="R", help="samples dropped for this reason code")
+    rv.add_argument("--flag", metavar="F", help="samples with this flag (a family such as pii matches pii:*)")
+    rv.add_argument("--group", action="store_true", help="whole near-duplicate groups, largest first, keeper first")
+    rv.add_argument("--limit", type=int, metavar="N", help="at most N samples (default 200; groups are not split)")
+    rv.add_argument("--out", required=True, metavar="FILE", help="decisions file to write: .csv or .jsonl")
+    rv.set_defaults(func=_cmd_review)
+
+    lg = sub.add_parser("ledger", help="list ledger rows by reason, flag, verdict or split",
+                        description="Answer audit questions from the ledger without writing code: filters "
+                                    "combine (AND); fast on large ledgers (Arrow kernels, only the needed columns "
+                                    "are read).")
+    lg.add_argument("out", metavar="DIR", help="output directory of a finished run")
+    lg.add_argument("--reason", metavar="R", help="samples with this drop reason")
+    lg.add_argument("--flag", metavar="F", help="samples with this flag (a family such as pii matches pii:*)")
+    verdict = lg.add_mutually_exclusive_group()
+    verdict.add_argument("--kept", dest="kept", action="store_const", const=True, help="kept samples only")
+    verdict.add_argument("--dropped", dest="kept", action="store_const", const=False, help="dropped samples only")
+    lg.add_argument("--split", metavar="S", help="train, eval, quarantine, or none (dropped samples)")
+    lg.add_argument("--columns", nargs="+", metavar="COL",
+                    help="columns to show (names or a comma list; default sample_id source kept split reasons flags)")
+    lg.add_argument("--format", choices=["table", "csv", "json"], default="table",
+                    help="table (default), csv, or json (one JSON object per line)")
+    lg.add_argument("--limit", type=int, metavar="N", help="at most N rows (default: 50 for table, all otherwise)")
+    lg.set_defaults(func=_cmd_ledger)
 
 
 def _cmd_status(a: argparse.Namespace) -> int:
@@ -96,11 +159,11 @@ def _cmd_status(a: argparse.Namespace) -> int:
     if a.json:
         print(json.dumps(st))
         return 0
-    print(f"{a.out}: {'running' if st['running'] else ('finished' if st.get('finished') else 'not finished')}")
+    print(f"{_e(a.out)}: {'running' if st['running'] else ('finished' if st.get('finished') else 'not finished')}")
     for name, s in st.get("stages", {}).items():
-        print(f"  {name:<16} {s['kind']:<7} computed {s['ran']}, reused {s['reused']}, {s['seconds']}s")
+        print(f"  {_e(name):<16} {s['kind']:<7} computed {s['ran']}, reused {s['reused']}, {s['seconds']}s")
     for name, ok in st["outputs"].items():
-        print(f"  {name:<16} {'present' if ok else 'missing'}")
+        print(f"  {_e(name):<16} {'present' if ok else 'missing'}")
     return 0
 
 
@@ -108,7 +171,7 @@ def _cmd_init(a: argparse.Namespace) -> int:
     from . import api
 
     p = api.init(a.path, preset=a.preset, force=a.force)
-    print(f"wrote {p}")
+    print(f"wrote {_e(p)}")
     return 0
 
 
@@ -135,6 +198,9 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--eval-set", action="append", default=[], metavar="PATH",
                    help="an outside eval set (folder, manifest or shards); training images that near-duplicate "
                         "it are dropped as eval_overlap (repeatable; adds to [split] eval_sets)")
+    r.add_argument("--decisions", metavar="FILE",
+                   help="a reviewer's decisions (CSV or JSONL: sample_id or source, decision keep|drop, note), "
+                        "applied over the checks and recorded in the ledger; they hold on every re-run")
     r.add_argument("--json", action="store_true", help="print the summary as one JSON line")
     r.add_argument("--quiet", action="store_true", help="no progress bars")
     r.set_defaults(func=_cmd_run)
@@ -143,7 +209,8 @@ def build_parser() -> argparse.ArgumentParser:
                        description="Print every check of one sample: its value, threshold and verdict, and its "
                                    "near-duplicate group.")
     e.add_argument("out", help="output directory of a finished run")
-    e.add_argument("sample", help="sample_id, or source path (relative to the input root)")
+    e.add_argument("sample", help="sample_id (any case, or a unique prefix of 4+ characters), the manifest's own "
+                                  "id, or the source path (as recorded, ./-relative, or absolute under the input root)")
     e.add_argument("--json", action="store_true", help="print JSON")
     e.set_defaults(func=_cmd_explain)
 
@@ -162,6 +229,7 @@ def build_parser() -> argparse.ArgumentParser:
     i.add_argument("--force", action="store_true", help="overwrite an existing file")
     i.set_defaults(func=_cmd_init)
     _add_leakcheck(sub)
+    _add_review_and_ledger(sub)
     return p
 
 
@@ -179,7 +247,7 @@ def _cmd_leakcheck(a: argparse.Namespace) -> int:
         return 1 if pairs else 0
     for p in pairs:
         d = f"cosine {p['cosine']}" if p["signal"] == "semantic" else f"{p['distance']:>2} bits"
-        print(f"{d}  {p['a']}  <->  {p['b']}")
+        print(f"{d}  {_e(p['a'])}  <->  {_e(p['b'])}")
     for side in ("a", "b"):
         if res[f"{side}_unreadable"]:
             print(f"note: {len(res[side + '_unreadable'])} image(s) of {side.upper()} could not be decoded")
@@ -188,7 +256,7 @@ def _cmd_leakcheck(a: argparse.Namespace) -> int:
           + (f" or cosine >= {res['semantic']}" if res["semantic"] else "")
           + f"; A {res['a_count']} images, B {res['b_count']} images; {res['seconds']:.2f}s")
     if a.html:
-        print(f"page:     {a.html}")
+        print(f"page:     {_e(a.html)}")
     return 1 if pairs else 0
 
 
@@ -215,17 +283,36 @@ def _add_leakcheck(sub: Any) -> None:
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
     a = parser.parse_args(argv)
+    log_to_stderr()
     if not getattr(a, "func", None):
         parser.print_help()
         return 2
     try:
         return a.func(a)
     except CurateError as e:
-        print(f"curate: error: {e}", file=sys.stderr)
+        print(f"curate: error: {_e(e)}", file=sys.stderr)
         return e.exit_code
+    except BrokenPipeError:  # the reader went away (e.g. `curate explain ... | head`)
+        _silence_stdout()
+        return 0
     except KeyboardInterrupt:
         print("curate: interrupted; re-run the same command to resume", file=sys.stderr)
         return 130
+    except Exception as e:  # noqa: BLE001 - a bug: one line, exit 3
+        print(f"curate: internal error: {type(e).__name__}: {e} (a bug in curate; please report it with the "
+              "command you ran)", file=sys.stderr)
+        return 3
+
+
+def _silence_stdout() -> None:
+    """Point stdout at /dev/null so Python's exit flush does not raise again on the closed pipe."""
+    import os
+
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+    except OSError:
+        pass
 
 
 if __name__ == "__main__":

@@ -9,6 +9,7 @@ from __future__ import annotations
 import dataclasses
 import hashlib
 import json
+import math
 import tomllib
 import types
 import typing
@@ -16,6 +17,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Literal
 
+from .checks import ACTIONS
 from .errors import ConfigError
 
 
@@ -33,6 +35,16 @@ class InputConfig:
     id_column: str = ""
     # Samples per work shard; the unit of parallel work and of resume (common practice: 1k-10k).
     shard_size: int = 500
+    # Largest image file read (bytes; larger: file_too_large): 2**28 = uncompressed 8-bit RGB at Pillow's MAX_IMAGE_PIXELS.
+    max_file_bytes: int = 1 << 28
+    # Follow links and manifest paths that resolve outside the input root (off: they get outside_root; common practice).
+    allow_outside_root: bool = False
+
+    def validate(self) -> None:
+        if self.shard_size < 1:
+            raise ValueError(f"shard_size must be >= 1, got {self.shard_size}")
+        if self.max_file_bytes < 1:
+            raise ValueError(f"max_file_bytes must be >= 1, got {self.max_file_bytes}")
 
 
 @dataclass
@@ -46,12 +58,38 @@ class RunConfig:
     ray_address: str = ""
     # CPUs Ray reserves per shard task; fractions let reads and tasks share small machines.
     ray_task_cpus: float = 1.0
+    # Actors that run model stages (embed), each holding the model once; 0 = one per GPU, or one on a
+    # CPU-only cluster.
+    ray_model_actors: int = 0
+    # GPUs per model actor; -1 = 1 when the cluster has GPUs, else 0.
+    ray_model_gpus: float = -1
+    # CPUs Ray reserves per model actor; a fraction leaves CPUs for the tasks that read shards (on a
+    # 2-CPU machine an actor holding every CPU would starve them).
+    ray_model_cpus: float = 0.5
+    # Modules that register extra stages (docs/stages.md): Python files, relative to this config
+    # file, or importable module names. They run as your own code does: list only code you trust.
+    plugins: list[str] = field(default_factory=list, metadata={"path": True})
+
+    def validate(self) -> None:
+        if self.workers < 0:
+            raise ValueError(f"workers must be >= 0 (0 = one per CPU core), got {self.workers}")
+        if not self.ray_task_cpus > 0 or not self.ray_model_cpus > 0:
+            raise ValueError("ray_task_cpus and ray_model_cpus must be > 0")
+        if self.ray_model_actors < 0 or (self.ray_model_gpus < 0 and self.ray_model_gpus != -1):
+            raise ValueError("ray_model_actors must be >= 0 and ray_model_gpus >= 0 (or -1 = automatic)")
 
 
 @dataclass
 class DecideConfig:
-    # Per reason code, override its default action: "drop", "flag" or "keep" (ignore).
+    # Per reason code (e.g. "pii:email") or code family (e.g. "pii"), override its default action:
+    # "drop", "flag" (keep and mark for review), "keep" (ignore), and where the code allows them
+    # "quarantine" or "redact".
     actions: dict[str, str] = field(default_factory=dict)
+
+    def validate(self) -> None:
+        for code, act in self.actions.items():
+            if act not in ACTIONS:
+                raise ValueError(f"action {act!r} for {code} is not one of {', '.join(ACTIONS)}")
 
 
 BUILTIN_SECTIONS: dict[str, type] = {"input": InputConfig, "run": RunConfig, "decide": DecideConfig}
@@ -88,13 +126,37 @@ class PipelineConfig:
     def to_toml(self) -> str:
         return dump_toml(self.to_dict())
 
+    def __reduce__(self) -> tuple:
+        # Sections of plugin stages are classes of the plugin modules: a worker process imports the
+        # plugins first, then reads the sections.
+        import pickle
+
+        run = self._sections.get("run")
+        return (_unpickle, (list(getattr(run, "plugins", []) or []), pickle.dumps((self._sections, self.origin))))
+
+
+def _unpickle(plugin_list: list[str], blob: bytes) -> "PipelineConfig":
+    import pickle
+
+    from . import plugins
+
+    plugins.load(plugin_list)
+    sections, origin = pickle.loads(blob)
+    return PipelineConfig(sections, origin)
+
 
 def load_config(
     path: str | Path | None,
     sets: list[str] | tuple[str, ...] = (),
     sections: dict[str, type] | None = None,
+    *,
+    lenient: bool = False,
 ) -> PipelineConfig:
-    """Defaults < file < sets. `sections` maps section name -> dataclass (stages add theirs)."""
+    """Defaults < file < sets. `sections` maps section name -> dataclass (stages add theirs).
+
+    Relative paths in the file are relative to the file; relative paths given with `sets` (the
+    command line) are relative to the working directory. `lenient`: skip sections nobody declared
+    (used once, to read `[run] plugins` before the plugins' own sections exist)."""
     all_sections = dict(BUILTIN_SECTIONS)
     all_sections.update(sections or {})
     data: dict[str, Any] = {}
@@ -105,10 +167,17 @@ def load_config(
             data = tomllib.loads(p.read_text(encoding="utf-8"))
         except FileNotFoundError:
             raise ConfigError("config file not found", file=fname) from None
+        except IsADirectoryError:
+            raise ConfigError("expected a TOML file, got a folder", file=fname) from None
         except (tomllib.TOMLDecodeError, UnicodeDecodeError) as e:
             raise ConfigError(f"not valid TOML ({e})", file=fname) from e
+        except OSError as e:
+            raise ConfigError(f"cannot be read ({e.strerror or e})", file=fname) from e
+    from_file = _copy_tables(data)
+    given: dict[str, Any] = {}
     for s in sets:
         _apply_set(data, s)
+        _apply_set(given, s)
     built: dict[str, Any] = {}
     for name, cls in all_sections.items():
         raw = data.get(name, {})
@@ -116,34 +185,47 @@ def load_config(
             raise ConfigError(f"expected a table [{name}], got {type(raw).__name__}", file=fname, key=name)
         built[name] = _build(cls, raw, name, fname)
     unknown = sorted(set(data) - set(all_sections))
-    if unknown:
+    if unknown and not lenient:
         raise ConfigError(
             f"unknown section; expected one of: {', '.join(sorted(all_sections))}", file=fname, key=unknown[0]
         )
     cfg = PipelineConfig(built, origin=fname)
     if fname:
-        _resolve_paths(cfg, data, Path(fname).parent)
+        _resolve_paths(cfg, from_file, Path(fname).parent, skip=given)
+    _resolve_paths(cfg, given, Path.cwd())
     return cfg
 
 
-def _resolve_paths(cfg: PipelineConfig, data: dict, base: Path) -> None:
-    """Relative paths written in a config file are relative to that file.
+def _copy_tables(data: dict) -> dict:
+    return {k: (dict(v) if isinstance(v, dict) else v) for k, v in data.items()}
 
-    Path fields are `input.path` and any dataclass field with metadata {"path": True}; a value that
-    is not an existing path there (e.g. a pretrained tag like "openai") is left as written.
+
+def _resolve_paths(cfg: PipelineConfig, data: dict, base: Path, skip: dict | None = None) -> None:
+    """Make relative paths that `data` set absolute against `base` (skipping keys that `skip` overrides).
+
+    Path fields are `input.path` and any dataclass field with metadata {"path": True}; for the latter,
+    a value that is not an existing path there (e.g. a pretrained tag like "openai") is left as written.
     """
-    if cfg.input.path and not Path(cfg.input.path).is_absolute():
+    skip = skip or {}
+
+    def own(section: str, key: str) -> bool:
+        return key in (data.get(section) or {}) and key not in (skip.get(section) or {})
+
+    path = cfg.input.path
+    if own("input", "path") and path and "://" not in path and not Path(path).is_absolute():
         cfg.input.path = str((base / cfg.input.path).resolve())
     for name in cfg.names():
         obj = cfg.section(name)
         for f in dataclasses.fields(obj):
-            if not f.metadata.get("path") or f.name not in data.get(name, {}):
+            if not f.metadata.get("path") or not own(name, f.name):
                 continue
             value = getattr(obj, f.name)
 
             def fix(v: str) -> str:
+                if not v or "://" in v or Path(v).is_absolute():  # URLs and absolute paths stay as given
+                    return v
                 p = base / v
-                return str(p.resolve()) if v and not Path(v).is_absolute() and p.exists() else v
+                return str(p.resolve()) if p.exists() else v
 
             setattr(obj, f.name, [fix(v) for v in value] if isinstance(value, list) else fix(value))
 
@@ -200,6 +282,9 @@ def _coerce(v: Any, tp: Any, fname: str | None, key: str) -> Any:
     if origin in (typing.Union, types.UnionType):
         if v is None and type(None) in args:
             return None
+        real = [a for a in args if a is not type(None)]
+        if len(real) == 1:
+            return _coerce(v, real[0], fname, key)
         errs = []
         for a in args:
             if a is type(None):
@@ -224,6 +309,8 @@ def _coerce(v: Any, tp: Any, fname: str | None, key: str) -> Any:
     if tp is float:
         if isinstance(v, bool) or not isinstance(v, (int, float)):
             raise bad("a number")
+        if not math.isfinite(v):
+            raise bad("a finite number")
         return float(v)
     if tp is str:
         if not isinstance(v, str):

@@ -21,6 +21,10 @@ class InputError(CurateError):
     """The input root or an input set cannot be read at all (one bad sample is never this)."""
 
 
+class OutputError(CurateError):
+    """The output directory cannot be created or written (read-only, a file in the way, disk full)."""
+
+
 class LockedError(CurateError):
     """Another live run holds the lock on this output directory."""
 

@@ -7,8 +7,12 @@ Five kinds of set, told apart by `detect_kind`:
 - shards:   a .parquet file or a folder of them with an `image` bytes column (our shard layout);
 - output:   a `curate run` output folder (manifest.json + shards/): every shard it lists.
 
+A set may also be an fsspec URL (`s3://`, `gs://`, `memory://`, ...; `file://` is a local path): it is
+listed and read through its store, streaming, never copied to local disk.
+
 Each image gets the same multi-view perceptual codes the pipeline computes (same decode as
-`inspect`, same `[hashes]` settings, curate.similarity.image_codes), optionally a CLIP embedding. Both are cached per set in a
+`inspect`, same `[hashes]` settings, curate.similarity.image_codes), optionally a CLIP embedding.
+Both are cached per set in a
 Parquet file keyed by the image's file path + size + mtime and by the settings, so a second
 leakcheck or run against an unchanged benchmark reads no image at all.
 """
@@ -106,14 +110,24 @@ def detect_kind(path: str) -> str:
 
 
 def list_set(path: str | Path) -> ImageSet:
-    """List a set of images. Raises InputError when the path is missing or of no known kind."""
-    root = os.path.abspath(os.path.expanduser(str(path)))
-    if not os.path.exists(root):
-        raise InputError(f"{root}: does not exist")
-    kind = detect_kind(root)
-    if kind in ("shards", "output"):
-        parts = _output_parts(root) if kind == "output" else _shard_parts(root)
-        return _list_parts(root, kind, parts)
+    """List a set of images (a local path or a URL). Raises InputError when the path is missing or
+    of no known kind."""
+    from .sources.stores import local_path
+
+    local = local_path(str(path))
+    if local is None:
+        root = str(path)
+        kind = _store_kind(root)
+        if kind in ("shards", "output"):
+            return _list_parts(root, kind, _store_parts(root, kind))
+    else:
+        root = os.path.abspath(os.path.expanduser(local))
+        if not os.path.exists(root):
+            raise InputError(f"{root}: does not exist")
+        kind = detect_kind(root)
+        if kind in ("shards", "output"):
+            parts = _output_parts(root) if kind == "output" else _shard_parts(root)
+            return _list_parts(root, kind, parts)
     from .config import InputConfig
     from .sources import list_samples
 
@@ -128,7 +142,7 @@ def list_set(path: str | Path) -> ImageSet:
     problems = t.column("source_problem").to_pylist()
     if kind == "tar":
         # A member's own mtime says little about a rewritten archive: add the archive's stamp.
-        from .sources.common import split_locator
+        from .sources import split_locator
 
         stamps = []
         for ref, s, m in zip(refs, sizes, mtimes):
@@ -141,6 +155,15 @@ def list_set(path: str | Path) -> ImageSet:
 
 
 def _stat(path: str) -> tuple[int, int]:
+    from .sources import stores
+
+    if stores.is_url(path) and stores.local_path(path) is None:
+        try:
+            store, inner = stores.open_url(path)
+            size, mtime = stores.stamp(store.info(inner))
+        except Exception:  # noqa: BLE001 - no stamp: the cache entry is simply not trusted
+            return 0, 0
+        return int(size or 0), int(mtime or 0)
     try:
         st = os.stat(path)
         return st.st_size, st.st_mtime_ns
@@ -148,10 +171,75 @@ def _stat(path: str) -> tuple[int, int]:
         return 0, 0
 
 
+def _parquet(path: str) -> pq.ParquetFile:
+    """A Parquet file by local path or URL (read through its store, never copied)."""
+    from .sources import stores
+
+    if stores.is_url(path) and stores.local_path(path) is None:
+        store, inner = stores.open_url(path)
+        return pq.ParquetFile(store.open(inner))
+    return pq.ParquetFile(path)
+
+
+def _store_kind(url: str) -> str:
+    """detect_kind for a URL (the set's files are listed through its store)."""
+    from .sources import detect_format, stores
+    from .sources.common import is_image_name, is_tar_name
+
+    store, path = stores.open_url(url)
+    try:
+        info = store.info(path)
+    except FileNotFoundError:
+        raise InputError(f"{url}: does not exist") from None
+    except Exception as e:  # noqa: BLE001 - a store raises its own kinds (permissions, network)
+        raise InputError(f"{url}: cannot be read ({e})") from e
+    if stores.kind_of(info) != "dir":
+        if url.lower().endswith(".parquet") and _has_image_bytes(url):
+            return "shards"
+        return detect_format(url)
+    if store.fs.isfile(stores.join(path, "manifest.json")) and store.fs.isdir(stores.join(path, "shards")):
+        return "output"
+    names = [p.rsplit("/", 1)[-1] for p in store.fs.find(path)]
+    if any(is_image_name(n) for n in names):
+        return "folder"
+    if any(is_tar_name(n) for n in names):
+        return "tar"
+    if any(n.lower().endswith(".parquet") for n in names):
+        return "shards"
+    return "folder"
+
+
+def _store_parquets(store: Any, path: str) -> list[str]:
+    return sorted(store.url(p) for p in store.fs.find(path) if p.lower().endswith(".parquet")
+                  and not p.rsplit("/", 1)[-1].startswith("."))
+
+
+def _store_parts(url: str, kind: str) -> list[str]:
+    import json
+
+    from .sources import stores
+
+    store, path = stores.open_url(url)
+    if kind == "output":
+        try:
+            with store.open(stores.join(path, "manifest.json")) as f:
+                manifest = json.loads(f.read().decode("utf-8"))
+        except (OSError, ValueError) as e:
+            raise InputError(f"{url}/manifest.json: cannot be read ({e})") from e
+        entries = manifest.get("shards") or []
+        return [store.url(stores.join(path, e["path"])) for e in entries if isinstance(e, dict) and e.get("path")]
+    if not store.fs.isdir(path):
+        return [url]
+    keep = [p for p in _store_parquets(store, path) if _has_image_bytes(p)]
+    if not keep:
+        raise InputError(f"{url}: no Parquet file with an `image` bytes column under it")
+    return keep
+
+
 def _has_image_bytes(path: str) -> bool:
     try:
-        schema = pq.read_schema(path)
-    except (OSError, pa.ArrowInvalid):
+        schema = _parquet(path).schema_arrow
+    except (OSError, pa.ArrowInvalid, InputError):
         return False
     i = schema.get_field_index("image")
     return i >= 0 and (pa.types.is_binary(schema.field(i).type) or pa.types.is_large_binary(schema.field(i).type))
@@ -187,17 +275,17 @@ def _list_parts(root: str, kind: str, parts: list[str]) -> ImageSet:
     refs: list[str] = []
     stamps: list[tuple[int, int]] = []
     rows: list[tuple[str, int]] = []
-    base = root if os.path.isdir(root) else os.path.dirname(root)
+    base = _base(root)
     for part in parts:
         try:
-            pf = pq.ParquetFile(part)
+            pf = _parquet(part)
             has_source = "source" in pf.schema_arrow.names
             sources = pf.read(columns=["source"]).column("source").to_pylist() if has_source else None
             n = pf.metadata.num_rows
         except (OSError, pa.ArrowInvalid) as e:
             raise InputError(f"{part}: not a readable Parquet shard ({e})") from e
         stamp = _stat(part)
-        rel = os.path.relpath(part, base).replace(os.sep, "/")
+        rel = part[len(base) + 1:] if part.startswith(base + "/") else os.path.relpath(part, base).replace(os.sep, "/")
         for r in range(n):
             src = sources[r] if sources is not None else None
             names.append(src if src else f"{rel}#{r}")
@@ -205,6 +293,16 @@ def _list_parts(root: str, kind: str, parts: list[str]) -> ImageSet:
             stamps.append(stamp)
             rows.append((part, r))
     return ImageSet(root, kind, names, refs, stamps, [None] * len(names), rows)
+
+
+def _base(root: str) -> str:
+    """The folder that names of shard rows are relative to: the root, or the folder of a root file."""
+    from .sources import stores
+
+    if stores.is_url(root) and stores.local_path(root) is None:
+        store, path = stores.open_url(root)
+        return root.rstrip("/") if store.fs.isdir(path) else root.rsplit("/", 1)[0]
+    return root if os.path.isdir(root) else os.path.dirname(root)
 
 
 def _read_shard_rows(rows: list[tuple[str, int]]) -> Iterator[bytes | Exception]:
@@ -228,7 +326,7 @@ def _read_shard_rows(rows: list[tuple[str, int]]) -> Iterator[bytes | Exception]
 def _part_rows(part: str, wanted: list[int]) -> dict[int, bytes | Exception]:
     need = set(wanted)
     out: dict[int, bytes | Exception] = {}
-    pf = pq.ParquetFile(part)
+    pf = _parquet(part)
     start = 0
     for batch in pf.iter_batches(columns=["image"], batch_size=256):
         col = batch.column(0)
@@ -296,7 +394,7 @@ def codes_of_bytes(data: bytes | Exception, settings: HashSettings) -> tuple[np.
     """(codes uint64[K], None) for one image, or (None, reason) when it does not decode."""
     from .stages.inspect import inspect_one
 
-    cols, checks, rgb = inspect_one(data, settings.inspect, None)
+    cols, checks, rgb = inspect_one(data, settings.inspect)
     if rgb is None:
         failed = [c["code"] for c in checks if c["failed"]]
         return None, (failed[-1] if failed else "decode_error")
@@ -319,7 +417,7 @@ def codes_matrix(table: pa.Table, hcfg: Any) -> tuple[np.ndarray | None, np.ndar
     """(n, K) codes from the hash column inspect wrote, and which rows have them (None: no column)."""
     from .stages import hashes as hmod
 
-    col = hmod.codes_column(hcfg)
+    col = hmod.CODES
     if col not in table.column_names:
         return None, np.zeros(table.num_rows, dtype=bool)
     return hmod.codes_matrix(table.column(col), hmod.variants(hcfg))

@@ -20,7 +20,7 @@ from typing import Any
 import numpy as np
 
 from . import imagesets, similarity
-from .errors import ConfigError
+from .errors import ConfigError, InputError
 
 # Pairs drawn in the HTML page (the JSON and the return value always hold every pair).
 HTML_MAX_PAIRS = 500
@@ -66,6 +66,8 @@ def leakcheck(a: str | Path, b: str | Path, *, radius: int | None = None, semant
     for which, path in (("a", a), ("b", b)):
         t = time.perf_counter()
         s = imagesets.list_set(path)
+        if len(s) == 0:
+            raise InputError(f"set {which.upper()} ({path}) holds no images; nothing to compare")
         timings[f"list_{which}"] = time.perf_counter() - t
         t = time.perf_counter()
         sc = imagesets.set_codes(s, settings, cache_dir=cache, workers=workers)

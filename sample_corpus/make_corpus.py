@@ -24,8 +24,9 @@ from pathlib import Path
 from PIL import Image, ImageDraw, ImageFilter, ImageFont, ImageOps
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-import workshop  # noqa: E402
 from curate.hashing import min_distance  # noqa: E402
+
+import workshop  # noqa: E402
 
 HERE = Path(__file__).resolve().parent
 MARKER = ".kilnworks-corpus"  # lets a re-run clear a folder this script made, and nothing else
@@ -547,10 +548,9 @@ def build() -> list[Sample]:
 
 def codes(img: Image.Image):
     """The pipeline's own perceptual codes of an image (default [hashes] settings)."""
-    from curate.stages.hashes import HashesConfig, codes_column, hash_columns
+    from curate.stages.hashes import HashesConfig, image_codes
 
-    cfg = HashesConfig()
-    return hash_columns(img, cfg)[codes_column(cfg)]
+    return image_codes(img, HashesConfig())
 
 
 def decoded_hash(data: bytes):

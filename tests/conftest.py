@@ -34,10 +34,20 @@ def sample_corpus(tmp_path_factory) -> Path:
     return out
 
 
+def textured(arr_small, size, rng):
+    """A smooth random picture of `size` with fine grain on top, so it reads as a photograph to the
+    image-quality checks (a test fixture; plain upscaled blobs are flagged as upscaled and flat)."""
+    import numpy as np
+    from PIL import Image
+
+    img = np.asarray(Image.fromarray(arr_small).resize(size, Image.Resampling.BICUBIC), np.int16)
+    grain = rng.integers(-24, 25, img.shape, dtype=np.int16)
+    return Image.fromarray(np.clip(img + grain, 0, 255).astype(np.uint8))
+
+
 def make_small_corpus(root: Path, n: int = 40, seed: int = 0) -> Path:
     """n distinct noisy JPEGs with sidecar captions (a test fixture; not the demo corpus)."""
     import numpy as np
-    from PIL import Image
 
     rng = np.random.default_rng(seed)
     root.mkdir(parents=True, exist_ok=True)
@@ -45,7 +55,7 @@ def make_small_corpus(root: Path, n: int = 40, seed: int = 0) -> Path:
     items = ["mug", "bowl", "vase", "plate", "jug"]
     for i in range(n):
         arr = rng.integers(0, 255, (8, 8, 3)).astype(np.uint8)
-        img = Image.fromarray(arr).resize((320 + 8 * (i % 5), 320), Image.Resampling.BICUBIC)
+        img = textured(arr, (320 + 8 * (i % 5), 320), rng)
         sub = root / ("a" if i % 2 else "b")
         sub.mkdir(exist_ok=True)
         img.save(sub / f"item{i:03d}.jpg", quality=92)
@@ -79,3 +89,21 @@ def to_jpeg(img, quality=90) -> bytes:
     buf = io.BytesIO()
     img.save(buf, "JPEG", quality=quality)
     return buf.getvalue()
+
+
+def pipeline_config(*sets: str, path=None):
+    """A resolved pipeline config: built-in defaults < `path` < `sets`."""
+    from curate.config import load_config
+    from curate.plan import config_sections
+
+    return load_config(path, sets=list(sets), sections=config_sections())
+
+
+def stage_call(name: str, table, *sets: str, cfg=None, **ctx_kw):
+    """Call one registered stage's function on a table the way the runner does (its config view)."""
+    from curate.stages import REGISTRY, StageContext
+
+    cfg = cfg if cfg is not None else pipeline_config(*sets)
+    st = REGISTRY[name]
+    view = st.view(cfg)
+    return st.fn(table, view.section(st.config_section), StageContext(config=view, **ctx_kw))

@@ -126,3 +126,45 @@ def test_camera_filenames(name):
 @pytest.mark.parametrize("text", ["a blue mug", "Teapot No. 4 in celadon glaze", "2 bowls on linen"])
 def test_real_captions_are_not_filenames(text):
     assert not looks_like_filename(text)
+
+
+# ---------------------------------------------------------------- HTML character references
+# Reference: the HTML Living Standard's named character references (Python's html.entities.html5
+# is a copy of that table): &lt; = U+003C '<', &gt; = U+003E '>', &eacute; = U+00E9, &amp; = '&';
+# &#60; and &#x3C; are '<' by code point (HTML, "numeric character reference").
+
+
+@pytest.mark.parametrize(
+    ("raw", "want"),
+    [
+        ("&lt;script&gt;alert(1)&lt;/script&gt; a mug", "&lt;script&gt;alert(1)&lt;/script&gt; a mug"),
+        ("&#60;b&#62;bold&#x3C;/b&#X3e; bowl", "&#60;b&#62;bold&#x3C;/b&#X3e; bowl"),
+        ("&LT;i&GT; &nvlt; vase", "&LT;i&GT; &nvlt; vase"),  # upper-case names; &nvlt; is '<' + U+20D2
+        ("&amp;lt;script&amp;gt;", "&lt;script&gt;"),  # one escape level comes off; '<' never appears
+        ("caf&eacute; cr&#232;me &#xE9;clair", "café crème éclair"),
+        ("Tom &amp;amp; Jerry mug", "Tom & Jerry mug"),
+        ("salt &amp pepper &notice", "salt &amp pepper &notice"),  # no ';': left as written
+        ("a <b>bold</b> mug &amp; saucer", "a <b>bold</b> mug & saucer"),  # markup in the input stays
+    ],
+)
+def test_entities_decode_to_text_but_never_to_markup(raw, want):
+    assert normalize(raw) == want
+
+
+def test_escaped_script_tag_reaches_the_caption_column_as_text():
+    out = _run(["a mug &lt;script&gt;alert(1)&lt;/script&gt; on a table".encode()])
+    (caption,) = out.column("caption").to_pylist()
+    assert "<" not in caption and ">" not in caption and "&lt;script&gt;" in caption
+
+
+_ENTITY_BITS = st.sampled_from(["&", "amp;", "lt;", "gt;", "#60;", "#x3c;", "#X3E;", "LT;", "nvgt;", "#", ";",
+                                "eacute;", "quot;", "a", " ", "#38;", "x"])
+
+
+@given(st.lists(st.one_of(_ENTITY_BITS, st.text(max_size=4)), max_size=30).map("".join))
+@settings(max_examples=300, deadline=None)
+def test_normalize_never_adds_angle_brackets(text):
+    # Property: whatever the references, the normalised caption holds no more '<' or '>' than the input.
+    out = normalize(text)
+    assert out.count("<") <= text.count("<") and out.count(">") <= text.count(">")
+    assert normalize(out) == out

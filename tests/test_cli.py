@@ -4,15 +4,15 @@ from __future__ import annotations
 import json
 import subprocess
 import sys
-from pathlib import Path
 
 import pytest
 
-from conftest import ROOT, make_small_corpus
 from curate import api
 from curate.cli import build_parser, main
 
-FAST = ["--set", "run.workers=1", "--set", "embed.enabled=false"]
+from conftest import ROOT, make_small_corpus
+
+FAST = ["--set", "run.workers=1", "--set", "embed.enabled=false", "--set", "agreement.enabled=false"]
 
 
 def _commands() -> dict:
@@ -24,7 +24,7 @@ def _commands() -> dict:
 def test_every_command_has_help_and_is_in_the_readme():
     choices, helps = _commands()
     readme = (ROOT / "README.md").read_text(encoding="utf-8")
-    assert {"run", "explain", "status", "init", "leakcheck"} <= set(choices)
+    assert {"run", "explain", "status", "init", "leakcheck", "review", "ledger"} <= set(choices)
     for name, p in choices.items():
         assert helps.get(name), f"{name} has no help line"
         assert p.format_help().strip()
@@ -33,7 +33,7 @@ def test_every_command_has_help_and_is_in_the_readme():
 
 def test_help_everywhere_exits_zero():
     for args in (["--help"], ["run", "--help"], ["explain", "--help"], ["status", "--help"], ["init", "--help"],
-                 ["leakcheck", "--help"]):
+                 ["leakcheck", "--help"], ["review", "--help"], ["ledger", "--help"]):
         r = subprocess.run([sys.executable, "-m", "curate.cli", *args], capture_output=True, text=True)
         assert r.returncode == 0 and "usage:" in r.stdout, args
 

@@ -185,7 +185,7 @@ def test_alpha_is_composited_on_white():
 
 
 def test_jpeg_draft_keeps_twice_the_input_size(monkeypatch):
-    from PIL import Image, JpegImagePlugin
+    from PIL import JpegImagePlugin
 
     seen = {}
     real = JpegImagePlugin.JpegImageFile.draft
@@ -218,9 +218,9 @@ def test_empty_table(tiny):
 def test_registration_and_identity(tiny):
     cfg_path, weights, _ = tiny
     st = REGISTRY["embed"]
-    assert st.kind == "shard" and st.parallel == "inline" and st.inputs == ("inspect", "caption")
+    assert st.kind == "shard" and st.parallel == "inline" and st.alive_only and st.phase == "model"
     _, ctx = _cfg(cfg_path, weights)
-    ident = st.identity(ctx.config)
+    ident = st.identity(st.view(ctx.config))
     assert ident["weights_sha256"] == hashlib.sha256(Path(weights).read_bytes()).hexdigest()
     assert ident["model"] == cfg_path and ident["quantize"] is False
 

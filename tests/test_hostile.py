@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import io
 import json
+import os
 import struct
 import tarfile
 import zlib
@@ -12,8 +13,9 @@ import numpy as np
 import pyarrow.parquet as pq
 from PIL import Image
 
-from conftest import jpeg_bytes
 from curate import api
+
+from conftest import jpeg_bytes
 
 
 def _png_header_only(w: int, h: int) -> bytes:
@@ -135,7 +137,7 @@ def test_tar_with_traversal_members_writes_nothing_outside(tmp_path):
         add("/abs/evil2.jpg", jpeg_bytes((400, 300), (0, 250, 0)))
     before = set(tmp_path.rglob("*"))
     out = tmp_path / "out"
-    api.run(None, input=str(root), out=str(out), sets=["run.workers=1", "embed.enabled=false"])
+    api.run(None, input=str(root), out=str(out), sets=["run.workers=1", "embed.enabled=false", "agreement.enabled=false"])
     rows = pq.read_table(out / "ledger.parquet").to_pylist()
     by_reason = {r["source"]: r["reasons"] for r in rows}
     assert by_reason["shard-000.tar/good"] == []
@@ -144,3 +146,102 @@ def test_tar_with_traversal_members_writes_nothing_outside(tmp_path):
     created = {p for p in set(tmp_path.rglob("*")) - before if out not in p.parents and p != out}
     assert not created, created
     assert not (tmp_path / "evil.jpg").exists() and not Path("/abs/evil2.jpg").exists()
+
+
+def _shard_images(out: Path) -> dict[str, bytes]:
+    """source -> image bytes of every kept sample, read back from the shards with plain pyarrow."""
+    got: dict[str, bytes] = {}
+    for part in sorted((out / "shards").rglob("*.parquet")):
+        for r in pq.read_table(part, columns=["sample_id", "image"]).to_pylist():
+            got[r["sample_id"]] = r["image"]
+    return got
+
+
+_FAST = ["run.workers=1", "embed.enabled=false", "agreement.enabled=false"]
+
+
+def test_folder_names_links_and_sizes_cannot_smuggle_bytes(tmp_path):
+    # Names with syntax in them, links out of the root, a huge sparse file, a FIFO and two
+    # names that escape alike: every input gets its own row, and every shard image is the
+    # very file the ledger row names.
+    root, outside = tmp_path / "corpus", tmp_path / "outside"
+    root.mkdir()
+    outside.mkdir()
+    (outside / "account-file").write_text("root:x:0:0:root:/root:/bin/sh\nsecret-line\n")
+    (outside / "secret.jpg").write_bytes(jpeg_bytes((400, 300), (0, 0, 0)))
+    files = {
+        "a.tar::b.jpg": jpeg_bytes((400, 300), (200, 10, 10)),
+        "mug.jpg": jpeg_bytes((400, 300), (10, 200, 10)),
+        "inv\\xffname.jpg": jpeg_bytes((400, 300), (10, 10, 200)),
+        "fine.jpg": jpeg_bytes((400, 300), (120, 120, 20)),
+    }
+    for name, data in files.items():
+        (root / name).write_bytes(data)
+        if name != "mug.jpg":
+            (root / name).with_suffix(".txt").write_text(f"a glazed bowl photographed on linen {len(name)}")
+    with tarfile.open(root / "a.tar", "w") as tf:  # the sibling archive a forged name would point into
+        data = jpeg_bytes((400, 300), (250, 250, 250))
+        info = tarfile.TarInfo("b.jpg")
+        info.size = len(data)
+        tf.addfile(info, io.BytesIO(data))
+    (root / "mug.txt").symlink_to(outside / "account-file")
+    (root / "out.jpg").symlink_to(outside / "secret.jpg")
+    (root / "out.txt").write_text("a caption for a linked picture")
+    (root / os.fsdecode(b"inv\xffname.jpg")).write_bytes(jpeg_bytes((400, 300), (60, 60, 60)))
+    with open(root / "huge.jpg", "wb") as f:
+        f.truncate(3 << 30)  # sparse: no disk, but 3 GiB if read whole
+    os.mkfifo(root / "pipe.jpg")
+    out = tmp_path / "out"
+    api.run(None, input=str(root), out=str(out), sets=_FAST)
+    ledger = pq.read_table(out / "ledger.parquet").to_pylist()
+    assert len(ledger) == 8
+    by = {}
+    for r in ledger:
+        by.setdefault(r["source"], []).append(r)
+    assert by["a.tar::b.jpg"][0]["kept"] and by["fine.jpg"][0]["kept"]
+    assert "caption_outside_root" in by["mug.jpg"][0]["reasons"] and by["mug.jpg"][0]["caption"] is None
+    assert "outside_root" in by["out.jpg"][0]["reasons"]
+    assert "file_too_large" in by["huge.jpg"][0]["reasons"]
+    assert "special_file" in by["pipe.jpg"][0]["reasons"]
+    twins = by["inv\\xffname.jpg"]
+    assert len(twins) == 2 and all("source_duplicate" in r["reasons"] for r in twins)
+    assert len({r["sample_id"] for r in ledger}) == len(ledger)
+    # nothing from outside the root reached the ledger
+    assert b"secret-line" not in (out / "ledger.parquet").read_bytes()
+    shards = _shard_images(out)
+    kept = {r["sample_id"]: r["source"] for r in ledger if r["kept"]}
+    assert set(shards) == set(kept) == {by["a.tar::b.jpg"][0]["sample_id"], by["fine.jpg"][0]["sample_id"]}
+    for sid, source in kept.items():
+        assert shards[sid] == files[source]  # the file itself, not a member of a.tar
+
+
+def test_tar_members_that_collide_never_reach_a_shard(tmp_path):
+    root = tmp_path / "tars"
+    root.mkdir()
+    members = [
+        ("k.jpg.png", _save(Image.new("RGB", (400, 300), (200, 30, 30)), "PNG")),
+        ("k.jpg", b"this member is text named like a picture\n" * 20),
+        ("k.png", _save(Image.new("RGB", (400, 300), (30, 200, 30)), "PNG")),
+        ("./x.jpg", jpeg_bytes((400, 300), (30, 30, 200))),
+        ("x.jpg", jpeg_bytes((400, 300), (200, 200, 30))),
+        ("ok.jpg", jpeg_bytes((400, 300), (90, 20, 160))),
+    ]
+    captions = [(f"{key}.txt", f"a glazed bowl on linen, key {i}".encode())
+                for i, key in enumerate(["k.jpg", "k", "x", "ok"])]
+    with tarfile.open(root / "shard-000.tar", "w") as tf:
+        for name, data in members + captions:
+            info = tarfile.TarInfo(name)
+            info.size = len(data)
+            tf.addfile(info, io.BytesIO(data))
+    out = tmp_path / "out"
+    api.run(None, input=str(root), out=str(out), sets=_FAST + ["inspect.min_file_bytes=0"])
+    ledger = pq.read_table(out / "ledger.parquet").to_pylist()
+    assert len(ledger) == len(members)  # one row per image member: none merged, none lost
+    assert len({r["sample_id"] for r in ledger}) == len(ledger)
+    dups = sorted(r["source"] for r in ledger if "source_duplicate" in r["reasons"])
+    assert dups == ["shard-000.tar/k.jpg", "shard-000.tar/k.jpg", "shard-000.tar/x.jpg", "shard-000.tar/x.jpg"]
+    kept = {r["source"]: r["sample_id"] for r in ledger if r["kept"]}
+    assert set(kept) == {"shard-000.tar/k.png", "shard-000.tar/ok"}
+    shards = _shard_images(out)
+    assert shards[kept["shard-000.tar/k.png"]] == members[2][1]
+    assert shards[kept["shard-000.tar/ok"]] == members[5][1]

@@ -8,9 +8,10 @@ import pyarrow as pa
 import pytest
 from PIL import Image
 
-from conftest import jpeg_bytes
 from curate.stages.base import StageContext
 from curate.stages.inspect import InspectConfig, inspect_one, run, to_rgb
+
+from conftest import jpeg_bytes
 
 CFG = InspectConfig()
 

@@ -11,7 +11,6 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
-from conftest import scene_photo, to_jpeg
 
 import curate.stages  # noqa: F401  (registers the stages)
 import curate.stages.embed  # noqa: F401
@@ -20,6 +19,8 @@ import curate.stages.neardup  # noqa: F401
 import curate.stages.split  # noqa: F401
 from curate import imagesets, similarity
 from curate.leakcheck import cross_set_pairs, leakcheck
+
+from conftest import scene_photo, to_jpeg
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT / "sample_corpus"))
@@ -301,7 +302,7 @@ def small_run(tmp_path_factory):
             (images / f"k{i:02d}_small.jpg").write_bytes(_jpeg(img.resize((360, 270)), quality=80))
             (images / f"k{i:02d}_small.txt").write_text(f"a stoneware piece, photo {i}", encoding="utf-8")
     out = root / "out"
-    sets_ = ["split.eval_fraction=0.3", "split.seed=4", "inspect.min_file_bytes=0", "embed.enabled=false",
+    sets_ = ["split.eval_fraction=0.3", "split.seed=4", "inspect.min_file_bytes=0", "embed.enabled=false", "agreement.enabled=false",
              "agreement.enabled=false"]
     from curate.plan import config_sections
 

@@ -12,12 +12,11 @@ import pyarrow as pa
 import pytest
 
 from curate import hashing
-from curate.config import DecideConfig, PipelineConfig, load_config
 from curate.errors import ConfigError
-from curate.stages import REGISTRY
+from curate.stages import REGISTRY, neardup
 from curate.stages import hashes as hashes_mod
-from curate.stages import neardup
-from curate.stages.base import CHECKS_TYPE, StageContext, check
+
+from conftest import pipeline_config, stage_call
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "bench"))
 pytest.importorskip("skimage")
@@ -25,17 +24,14 @@ pytest.importorskip("sklearn")
 import photoset  # noqa: E402
 
 
-def _ctx(decide: dict | None = None, **neardup_kw) -> tuple[neardup.NeardupConfig, StageContext]:
-    ncfg = neardup.NeardupConfig(**neardup_kw)
-    cfg = PipelineConfig({"hashes": hashes_mod.HashesConfig(), "neardup": ncfg,
-                          "decide": DecideConfig(actions=decide or {})})
-    return ncfg, StageContext(config=cfg)
+def _run(table: pa.Table, *sets: str) -> pa.Table:
+    return stage_call("neardup", table, *sets)
 
 
 def _table(rows: list[dict], emb: np.ndarray | None = None) -> pa.Table:
-    """A neardup input table: rows with sample_id, bytes or sha, image or codes, size, checks..."""
+    """A neardup input table: rows with sample_id, bytes or sha, image or codes, size, flags..."""
     hcfg = hashes_mod.HashesConfig()
-    col = hashes_mod.codes_column(hcfg)
+    col = hashes_mod.CODES
     cols = collections.defaultdict(list)
     for r in rows:
         cols["sample_id"].append(r["id"])
@@ -48,12 +44,14 @@ def _table(rows: list[dict], emb: np.ndarray | None = None) -> pa.Table:
         if "codes" in r:
             cols[col].append(r["codes"])
         else:
-            cols[col].append(hashes_mod.hash_columns(img, hcfg)[col] if img is not None else None)
+            cols[col].append(hashes_mod.image_codes(img, hcfg) if img is not None else None)
         cols["agreement"].append(r.get("agreement"))
-        cols["inspect.checks"].append(r.get("checks", []))
+        cols["flags_before"].append(r.get("flags", []))
+    (codes_col,) = hashes_mod.columns(REGISTRY["hashes"].view(pipeline_config()))
     fields = [pa.field("sample_id", pa.string()), pa.field("source", pa.string()), pa.field("decoded", pa.bool_()),
               pa.field("width", pa.int32()), pa.field("height", pa.int32()), pa.field("sha256", pa.string()),
-              *hashes_mod.hash_fields(hcfg), pa.field("agreement", pa.float32()), pa.field("inspect.checks", CHECKS_TYPE)]
+              pa.field(codes_col.name, codes_col.type), pa.field("agreement", pa.float32()),
+              pa.field("flags_before", pa.list_(pa.string()))]
     t = pa.Table.from_arrays([pa.array(cols[f.name], type=f.type) for f in fields], schema=pa.schema(fields))
     if emb is not None:
         t = t.append_column("image_emb", pa.FixedSizeListArray.from_arrays(pa.array(emb.astype(np.float16).ravel()), emb.shape[1]))
@@ -87,8 +85,7 @@ def photo_rows() -> list[dict]:
 
 @pytest.fixture(scope="module")
 def photo_groups(photo_rows) -> dict[str, dict]:
-    ncfg, ctx = _ctx()
-    return _by_id(neardup.run(_table(photo_rows), ncfg, ctx))
+    return _by_id(_run(_table(photo_rows)))
 
 
 def test_distinct_public_photos_are_never_grouped(photo_rows, photo_groups):
@@ -138,7 +135,7 @@ def test_keeper_is_the_largest_copy_and_others_point_to_it(photo_groups):
         assert c["code"] == "duplicate" and c["failed"] == (r["dup_of"] is not None)
         if r["dup_of"] is not None:
             assert r["dup_of"] == keepers[0]["sample_id"] and r["dup_signal"] in ("phash", "sha256")
-            assert keepers[0]["sample_id"] in c["value"]
+            assert keepers[0]["sample_id"] in c["detail"]
 
 
 # ----------------------------------------------------------------------------- keeper rule
@@ -154,9 +151,9 @@ def _codes(seed: int, flips: int = 0, base: int | None = None) -> list[int]:
 
 def _rule_rows() -> list[dict]:
     base = 0x0123456789ABCDEF
-    failed = [check("short_side_small", 10, ">=256", True)]
     return [
-        {"id": "e", "codes": _codes(1, 2, base), "width": 2000, "height": 2000, "agreement": 0.2, "checks": failed},
+        {"id": "e", "codes": _codes(1, 2, base), "width": 2000, "height": 2000, "agreement": 0.2,
+         "flags": ["watermark"]},
         {"id": "b", "codes": _codes(2, 3, base), "width": 800, "height": 600, "agreement": 0.25},
         {"id": "d", "codes": _codes(3, 1, base), "width": 800, "height": 600, "agreement": 0.31},
         {"id": "c", "codes": _codes(4, 0, base), "width": 800, "height": 600, "agreement": 0.31},
@@ -167,11 +164,12 @@ def _rule_rows() -> list[dict]:
 
 
 def test_keeper_rule_order_and_determinism():
-    # Rule (documented in neardup): not dropped elsewhere, most pixels, highest agreement, smallest id.
+    # Rule (documented in neardup), here with agreement in the keeper list: no flags, most pixels,
+    # highest agreement, smallest id.
     rows = _rule_rows()
-    ncfg, ctx = _ctx()
-    out = _by_id(neardup.run(_table(rows), ncfg, ctx))
-    # e has the most pixels but fails an inspect check; b, c, d tie on pixels; c and d tie on
+    order = 'neardup.keeper=["unflagged", "pixels", "agreement"]'
+    out = _by_id(_run(_table(rows), order))
+    # e has the most pixels but carries a flag; b, c, d tie on pixels; c and d tie on
     # agreement; c has the smaller id.
     for sid in "abde":
         assert out[sid]["group_id"] == "c" and out[sid]["dup_of"] == "c"
@@ -183,19 +181,18 @@ def test_keeper_rule_order_and_determinism():
     for seed in range(3):
         shuffled = rows[:]
         random.Random(seed).shuffle(shuffled)
-        again = _by_id(neardup.run(_table(shuffled), ncfg, ctx))
+        again = _by_id(_run(_table(shuffled), order))
         assert again == out
-    # With the inspect check turned off by [decide], e (most pixels) keeps the group.
-    ncfg, ctx = _ctx(decide={"short_side_small": "keep"})
-    out2 = _by_id(neardup.run(_table(rows), ncfg, ctx))
+    # Without the flag, e (most pixels) keeps the group.
+    rows[0]["flags"] = []
+    out2 = _by_id(_run(_table(rows), order))
     assert out2["c"]["dup_of"] == "e" and out2["e"]["dup_of"] is None
 
 
 def test_exact_bytes_group_without_codes():
     rows = [{"id": "p", "sha": "aa" * 32, "codes": None}, {"id": "q", "sha": "aa" * 32, "codes": None},
             {"id": "r", "sha": "bb" * 32, "codes": None}]
-    ncfg, ctx = _ctx()
-    out = _by_id(neardup.run(_table(rows), ncfg, ctx))
+    out = _by_id(_run(_table(rows)))
     assert out["q"]["dup_of"] == "p" and out["q"]["dup_signal"] == "sha256" and out["q"]["dup_distance"] == 0
     assert out["r"]["group_size"] == 1
 
@@ -207,8 +204,7 @@ def test_chained_copies_share_one_group():
     c = b | (((1 << 8) - 1) << 8)  # 8 bits from b, 16 from a
     k = hashes_mod.variants(hashes_mod.HashesConfig())
     rows = [{"id": i, "codes": [v] * k, "width": w, "height": w} for i, v, w in (("a", a, 500), ("b", b, 400), ("c", c, 300))]
-    ncfg, ctx = _ctx()
-    out = _by_id(neardup.run(_table(rows), ncfg, ctx))
+    out = _by_id(_run(_table(rows)))
     assert {out[i]["group_id"] for i in "abc"} == {"a"}
     assert out["c"]["dup_distance"] == 16  # distance to the keeper, past the radius via b
 
@@ -219,22 +215,19 @@ def test_semantic_links_need_embeddings_and_the_threshold():
     e[1] = e[0] + 0.01 * rng.standard_normal(32)
     e /= np.linalg.norm(e, axis=1, keepdims=True)
     rows = [{"id": s, "codes": _codes(i)} for i, s in enumerate("uvw")]
-    ncfg, ctx = _ctx()
-    out = _by_id(neardup.run(_table(rows, emb=e), ncfg, ctx))
+    out = _by_id(_run(_table(rows, emb=e)))
     assert out["v"]["dup_of"] == "u" and out["v"]["dup_signal"] == "embedding"
-    assert 0 <= out["v"]["dup_distance"] < 1 - ncfg.cosine + 1e-3
+    assert 0 <= out["v"]["dup_distance"] < 1 - neardup.NeardupConfig().cosine + 1e-3
     assert out["w"]["group_size"] == 1
-    ncfg, ctx = _ctx(semantic=False)
-    out = _by_id(neardup.run(_table(rows, emb=e), ncfg, ctx))
+    out = _by_id(_run(_table(rows, emb=e), "neardup.semantic=false"))
     assert out["v"]["group_size"] == 1
 
 
 def test_empty_and_all_undecoded():
-    ncfg, ctx = _ctx()
-    out = neardup.run(_table([]), ncfg, ctx)
+    out = _run(_table([]))
     assert out.num_rows == 0 and out.schema == neardup.OUTPUT_SCHEMA
     rows = [{"id": "x", "codes": None, "decoded": False}]
-    out = neardup.run(_table(rows), ncfg, ctx).to_pylist()
+    out = _run(_table(rows)).to_pylist()
     assert out[0]["group_id"] is None
 
 
@@ -244,19 +237,18 @@ def test_empty_and_all_undecoded():
 def test_registration_and_config():
     st = REGISTRY["neardup"]
     assert st.kind == "global" and st.checks[0].code == "duplicate" and st.checks[0].action == "drop"
-    assert "hashes" in st.reads_sections and "decide" in st.reads_sections
-    sections = {"neardup": neardup.NeardupConfig, "hashes": hashes_mod.HashesConfig}
-    cfg = load_config(None, ["neardup.radius=6", "hashes.flip=true"], sections=sections)
+    assert "hashes" in st.sections and st.alive_only
+    cfg = pipeline_config("neardup.radius=6", "hashes.flip=true")
     assert cfg.neardup.radius == 6 and hashes_mod.variants(cfg.hashes) == 14
     for bad in ("neardup.radius=40", "neardup.cosine=1.5", "hashes.scales=[]", "hashes.corner_mask=0.6"):
         with pytest.raises(ConfigError):
-            load_config(None, [bad], sections=sections)
+            pipeline_config(bad)
 
 
 def test_codes_matrix_handles_nulls_and_slices():
     hcfg = hashes_mod.HashesConfig()
     k = hashes_mod.variants(hcfg)
-    (field,) = hashes_mod.hash_fields(hcfg)
+    (field,) = hashes_mod.columns(REGISTRY["hashes"].view(pipeline_config()))
     vals = [[i] * k if i % 3 else None for i in range(10)]
     arr = pa.array(vals, type=field.type)
     codes, valid = hashes_mod.codes_matrix(arr.slice(2, 6), k)
@@ -266,3 +258,53 @@ def test_codes_matrix_handles_nulls_and_slices():
     chunked = pa.chunked_array([arr.slice(0, 4), arr.slice(4)])
     codes2, valid2 = hashes_mod.codes_matrix(chunked, k)
     assert valid2.sum() == sum(v is not None for v in vals) and codes2[5].tolist() == vals[5]
+
+
+# ----------------------------------------------------------------------------- the best copy is kept
+
+
+def _pair(**diff) -> pa.Table:
+    """Two copies of one picture (same codes) that differ in exactly the given columns."""
+    base = {"width": 800, "height": 600, "format": "JPEG", "jpeg_quality": 90.0, "sharpness": 0.5,
+            "border_share": 0.0, "overlay_share": 0.0, "flags": []}
+    rows = []
+    for sid, which in (("a", 0), ("b", 1)):
+        r = dict(base)
+        for k, (va, vb) in diff.items():
+            r[k] = (va, vb)[which]
+        rows.append(r | {"id": sid})
+    t = _table([{"id": r["id"], "codes": _codes(1), "width": r["width"], "height": r["height"],
+                 "flags": r["flags"]} for r in rows])
+    for col, typ in (("format", pa.string()), ("jpeg_quality", pa.float32()), ("sharpness", pa.float32()),
+                     ("border_share", pa.float32()), ("overlay_share", pa.float32())):
+        t = t.append_column(col, pa.array([r[col] for r in rows], typ))
+    return t
+
+
+@pytest.mark.parametrize("diff,winner,reason", [
+    # Each pair differs in exactly one criterion; the default priority picks the better copy ("a" would
+    # win every tie on sample_id, so "b" winning shows the criterion decided).
+    ({"flags": (["watermark"], [])}, "b", "unflagged"),
+    ({"width": (640, 800), "height": (480, 600)}, "b", "pixels"),
+    ({"jpeg_quality": (70.0, 95.0)}, "b", "fidelity"),
+    ({"format": ("JPEG", "PNG"), "jpeg_quality": (95.0, None)}, "b", "fidelity"),
+    ({"sharpness": (0.3, 0.6)}, "b", "sharpness"),
+    ({"overlay_share": (0.05, 0.0)}, "b", "clean"),
+    ({"border_share": (0.12, 0.0)}, "b", "clean"),
+    ({}, "a", "sample_id"),
+])
+def test_the_best_copy_is_kept(diff, winner, reason):
+    out = _by_id(_run(_pair(**diff)))
+    loser = "a" if winner == "b" else "b"
+    assert out[winner]["dup_of"] is None and out[loser]["dup_of"] == winner
+    assert out[loser]["keep_reason"] == reason
+    assert f"wins on {reason}" in out[loser]["neardup.checks"][0]["detail"]
+
+
+def test_keeper_order_is_configurable():
+    t = _pair(width=(1000, 800), sharpness=(0.2, 0.9))
+    assert _by_id(_run(t))["b"]["dup_of"] == "a"  # pixels first by default
+    out = _by_id(_run(t, 'neardup.keeper=["sharpness", "pixels"]'))
+    assert out["a"]["dup_of"] == "b" and out["a"]["keep_reason"] == "sharpness"
+    with pytest.raises(ConfigError):
+        pipeline_config('neardup.keeper=["prettiest"]')

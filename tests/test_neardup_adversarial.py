@@ -21,8 +21,9 @@ from curate.similarity import codes as C
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "bench"))
 skdata = pytest.importorskip("skimage.data")
 pytest.importorskip("sklearn")
-import photoset  # noqa: E402
 from PIL import Image, ImageEnhance, ImageFilter  # noqa: E402
+
+import photoset  # noqa: E402
 
 # Every view turn on: the most view pairs per sample pair, so the most chances of a false match.
 TURNS = S.CodeSettings(transforms=["mirror", "rot90", "rot180", "rot270"])

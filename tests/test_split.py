@@ -2,13 +2,9 @@
 target, and decontamination drops training candidates that near-duplicate an outside eval set."""
 from __future__ import annotations
 
-from conftest import scene_photo, to_jpeg
-
-import io
 import json
 import math
 import os
-import random
 import subprocess
 import sys
 from pathlib import Path
@@ -25,15 +21,15 @@ import curate.stages.hashes  # noqa: F401
 import curate.stages.neardup  # noqa: F401
 import curate.stages.split  # noqa: F401
 from curate.config import load_config
+from curate.execute import call_stage
 from curate.plan import config_sections
-from curate.stages import StageContext
 from curate.stages import split as split_mod
-from curate.stages.base import CHECKS_TYPE, check
 from curate.stages.split import assign_groups, unit_hash
+
+from conftest import scene_photo, to_jpeg
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT / "sample_corpus"))
-import workshop  # noqa: E402
 
 
 def _cfg(*sets: str):
@@ -44,24 +40,26 @@ def _cfg(*sets: str):
 
 
 def _table(groups: list[str | None], dropped: list[bool] | None = None, meta: list[str | None] | None = None):
-    """A global-stage input table: ids, group_id, one earlier stage's checks (a failed drop check)."""
+    """A global-stage input table: ids, group_id (None: did not decode), and which rows an earlier
+    check dropped (the runner shows the split only the others)."""
     n = len(groups)
     ids = [f"{i:016x}" for i in range(n)]
     dropped = dropped or [False] * n
-    checks = [[check("short_side_small", 10, ">=256", d)] for d in dropped]
     cols = {
         "sample_id": pa.array(ids, pa.string()),
         "meta": pa.array(meta or [None] * n, pa.string()),
         "decoded": pa.array([g is not None for g in groups], pa.bool_()),
-        "inspect.checks": pa.array(checks, type=CHECKS_TYPE),
+        "dropped": pa.array([bool(d) or g is None for g, d in zip(groups, dropped)], pa.bool_()),
         "group_id": pa.array(groups, pa.string()),
     }
     return pa.table(cols)
 
 
-def _run(table, *sets):
+def _run(table, *sets, stage="split", **ctx):
     cfg = _cfg(*sets)
-    return split_mod.run(table, cfg.split, StageContext(config=cfg))
+    alive = [i for i, d in enumerate(table.column("dropped").to_pylist()) if not d] \
+        if "dropped" in table.column_names else None
+    return call_stage(stage, table, cfg, alive, **ctx)
 
 
 # --------------------------------------------------------------------------- the draw
@@ -151,19 +149,16 @@ def test_no_group_straddles_splits(groups, drops, fraction, seed):
     assert all(len(v) == 1 for v in sides.values()), sides
 
 
-def test_drop_flag_and_keep_actions():
+def test_dropped_samples_are_not_split():
     t = _table(["a", "b", "c"], [False, True, True])
     out = _run(t, "split.eval_fraction=0.5")
     assert out.column("split").to_pylist()[1:] == [None, None]
-    # `[decide] actions` can turn the earlier drop into a flag: the sample then gets a side.
-    out = _run(t, "split.eval_fraction=0.5", 'decide.actions={short_side_small = "flag"}')
-    assert None not in out.column("split").to_pylist()
 
 
 def test_zero_fraction_means_all_train():
     out = _run(_table([f"g{i}" for i in range(50)]))
     assert out.column("split").to_pylist() == ["train"] * 50
-    assert out.column_names == ["sample_id", "split", "eval_match", "split.checks"]
+    assert out.column_names == ["sample_id", "split", "split.checks"]
 
 
 def test_stratify_by_manifest_column():
@@ -227,13 +222,12 @@ def planted(tmp_path_factory):
 
 
 def _pipeline_table(folder: Path, cfg):
-    from curate.runner import _hstack
+    from curate.layout import hstack
     from curate.sources import list_samples
-    from curate.stages import inspect as inspect_mod
 
     src = list_samples(cfg.input)
-    ins = inspect_mod.run(src, cfg.inspect, StageContext(config=cfg))
-    return _hstack([src, ins], "test")
+    ins = call_stage("inspect", src, cfg)
+    return hstack([src, ins, call_stage("hashes", hstack([src, ins], "test"), cfg)], "test")
 
 
 def test_decontamination_drops_the_planted_copy(planted, tmp_path):
@@ -242,13 +236,11 @@ def test_decontamination_drops_the_planted_copy(planted, tmp_path):
                              "inspect.min_short_side=100", "inspect.min_file_bytes=0"], config_sections())
     table = _pipeline_table(planted / "train", cfg)
     work = tmp_path / "work"
-    out = split_mod.run(table, cfg.split, StageContext(config=cfg, work_dir=str(work)))
+    out = call_stage("decontaminate", table, cfg, work_dir=str(work))
     sources = table.column("source").to_pylist()
     match = dict(zip(sources, out.column("eval_match").to_pylist()))
-    split = dict(zip(sources, out.column("split").to_pylist()))
     assert match["p03.jpg"] == str(bench / "copy_of_p03.jpg")
-    assert split["p03.jpg"] is None
-    checks = dict(zip(sources, out.column("split.checks").to_pylist()))
+    checks = dict(zip(sources, out.column("decontaminate.checks").to_pylist()))
     assert checks["p03.jpg"][0]["code"] == "eval_overlap" and checks["p03.jpg"][0]["failed"]
     # Oracle: imagehash's own pHash distance (ImageHash subtraction = Hamming distance) between the
     # full frames bounds the multi-crop distance from above, so the copy is within the radius.
@@ -258,10 +250,10 @@ def test_decontamination_drops_the_planted_copy(planted, tmp_path):
     d_ref = imagehash.phash(Image.open(planted / "train" / "p03.jpg")) - imagehash.phash(
         Image.open(bench / "copy_of_p03.jpg"))
     assert d_ref <= split_mod.effective_radius(cfg.split, cfg)
-    # Every other sample matches nothing and stays in training (this run has no eval split).
+    # Every other sample matches nothing.
     for s in sources:
         if s != "p03.jpg":
-            assert match[s] is None and split[s] == "train", s
+            assert match[s] is None and not checks[s][0]["failed"], s
     # The outside codes are cached under the work dir: a second run hashes nothing new.
     from curate import imagesets
 
@@ -320,12 +312,11 @@ def test_no_near_pair_straddles_brute_force():
         src, dst = rng.integers(n, size=2)
         flips = rng.choice(64, size=int(rng.integers(0, 9)), replace=False)
         codes[dst] = codes[src] ^ np.uint64(sum(1 << int(f) for f in flips))
-    t = _table([None] * n).drop_columns(["group_id"])
-    t = t.set_column(t.schema.get_field_index("decoded"), "decoded", pa.array([True] * n))
+    t = _table(["g"] * n).drop_columns(["group_id"])
     from curate.stages import hashes as hmod
 
-    t = t.append_column(hmod.codes_column(cfg.hashes), pa.array(codes.tolist(), pa.list_(pa.uint64())))
-    out = split_mod.run(t, cfg.split, StageContext(config=cfg)).column("split").to_pylist()
+    t = t.append_column(hmod.CODES, pa.array(codes.tolist(), pa.list_(pa.uint64(), k)))
+    out = call_stage("split", t, cfg).column("split").to_pylist()
     cl = codes.tolist()
     near = [(i, j) for i in range(n) for j in range(i + 1, n)
             if min((x ^ y).bit_count() for x in cl[i] for y in cl[j]) <= 6]
@@ -360,7 +351,7 @@ def test_semantic_decontamination_finds_a_mirrored_copy(planted, tmp_path):
     assert hit == {"p06.jpg": str(bench / "mirrored_p06.jpg")}
     assert "eval_overlap" in led["p06.jpg"]["reasons"]
     chk = [c for c in led["p06.jpg"]["checks"] if c["code"] == "eval_overlap"][0]
-    assert chk["value"].startswith("cosine ")
+    assert chk["unit"] == "cosine" and chk["value"] >= 0.9
 
 
 def test_codes_keep_all_64_bits_next_to_undecoded_rows():
@@ -373,7 +364,7 @@ def test_codes_keep_all_64_bits_next_to_undecoded_rows():
     k = hmod.variants(hcfg)
     big = 2**64 - 12345  # not representable in float64
     col = pa.array([[big] * k, None, [5] * k], pa.list_(pa.uint64(), k))
-    codes, ok = imagesets.codes_matrix(pa.table({hmod.codes_column(hcfg): col}), hcfg)
+    codes, ok = imagesets.codes_matrix(pa.table({hmod.CODES: col}), hcfg)
     assert ok.tolist() == [True, False, True]
     assert int(codes[0, 0]) == big and int(codes[2, 0]) == 5 and not codes[1].any()
 
@@ -384,4 +375,5 @@ def test_missing_eval_set_is_a_config_error(planted, tmp_path):
 
     with pytest.raises(ConfigError, match="split.eval_sets"):
         api.run(None, input=str(planted / "train"), out=str(tmp_path / "out"),
-                sets=[f'split.eval_sets=["{tmp_path / "nowhere"}"]', "embed.enabled=false"])
+                sets=[f'split.eval_sets=["{tmp_path / "nowhere"}"]', "embed.enabled=false",
+                      "agreement.enabled=false"])

@@ -15,6 +15,7 @@ import pytest
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "sample_corpus"))
 import make_corpus  # noqa: E402  (its Luhn and IBAN checks guard the planted numbers)
+
 import workshop  # noqa: E402
 
 

@@ -34,9 +34,9 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(ROOT / "sample_corpus"))
 
-import workshop  # noqa: E402
-
 from curate.models import clip as clipmod  # noqa: E402
+
+import workshop  # noqa: E402
 
 TRAIN_SEED = 10_000
 CALIB_SEED = 2_000_000

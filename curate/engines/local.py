@@ -7,10 +7,10 @@ import os
 from concurrent.futures import FIRST_EXCEPTION, ProcessPoolExecutor, wait
 from typing import Any, Iterator
 
+from ..execute import execute
 
-def _run(task: Any) -> int:
-    from ..runner import execute
 
+def _run(task: Any) -> dict:
     return execute(task)
 
 
@@ -27,17 +27,16 @@ class LocalEngine:
             from ._lifeline import die_with_parent
 
             ctx = mp.get_context("forkserver")
-            ctx.set_forkserver_preload(["curate.engines._forkserver_init", "curate.stages", "curate.runner"])
+            ctx.set_forkserver_preload(["curate.engines._forkserver_init", "curate.stages", "curate.execute"])
             self._pool = ProcessPoolExecutor(max_workers=self.workers, mp_context=ctx,
                                              initializer=die_with_parent)
         return self._pool
 
-    def map_tasks(self, tasks: list[Any], sizes: list[int]) -> Iterator[int]:
-        """Run tasks; yield each finished task's size (for progress). Raises the first failure."""
+    def map_tasks(self, tasks: list[Any], sizes: list[int]) -> Iterator[tuple[int, dict]]:
+        """Run tasks; yield (size, what execute returned) as each finishes. Raises the first failure."""
         if self.workers <= 1:
             for t, n in zip(tasks, sizes):
-                _run(t)
-                yield n
+                yield n, _run(t)
             return
         pool = self._get_pool()
         futs = {pool.submit(_run, t): n for t, n in zip(tasks, sizes)}
@@ -50,7 +49,7 @@ class LocalEngine:
                     for p in pending:
                         p.cancel()
                     raise exc
-                yield futs[f]
+                yield futs[f], f.result()
 
     def close(self) -> None:
         if self._pool is not None:

@@ -10,6 +10,8 @@ import io
 from collections import Counter
 from typing import Any
 
+import numpy as np
+
 KEPT, DROPPED, GROUP, INK, GRID = "#2f7f78", "#c0603a", "#5b6b8c", "#2b2b2b", "#d9d4cc"
 
 
@@ -89,21 +91,35 @@ def counts(data: dict[str, int], colour: str, what: str) -> bytes | None:
     return _png(fig)
 
 
-def agreement(values: list, kept: list, thresholds: list[float]) -> bytes | None:
+SCATTER_MAX = 20_000  # points drawn in a scatter plot; more are sampled evenly (the counts stay exact)
+
+
+def _arr(values: Any) -> np.ndarray:
+    """Floats as a numpy array, None -> NaN."""
+    a = np.asarray([np.nan if v is None else v for v in values] if isinstance(values, list) else values,
+                   dtype=np.float64)
+    return a
+
+
+def agreement(values: Any, kept: Any, thresholds: list[float]) -> bytes | None:
     """Histogram of caption-image agreement, kept vs dropped, with the threshold(s) used."""
-    pairs = [(float(v), k) for v, k in zip(values, kept) if v is not None and v == v]
-    if not pairs:
+    v, k = _arr(values), np.asarray(kept, dtype=bool)
+    ok = np.isfinite(v)
+    if not ok.any():
         return None
-    lo = min([v for v, _ in pairs] + thresholds)
-    hi = max([v for v, _ in pairs] + thresholds)
+    v, k = v[ok], k[ok]
+    lo = float(min(v.min(), *thresholds)) if thresholds else float(v.min())
+    hi = float(max(v.max(), *thresholds)) if thresholds else float(v.max())
     if hi - lo < 1e-6:
         lo, hi = lo - 0.05, hi + 0.05
-    bins = [lo + (hi - lo) * i / 40 for i in range(41)]
+    bins = np.linspace(lo, hi, 41)
     fig, ax = _figure()
     for flag, colour, name in ((True, KEPT, "kept"), (False, DROPPED, "dropped")):
-        vs = [v for v, k in pairs if bool(k) is flag]
-        if vs:
-            ax.hist(vs, bins=bins, color=colour, alpha=0.75, label=f"{name} ({len(vs):,})")
+        vs = v[k == flag]
+        if vs.size:
+            # bin first, then draw the 40 bars: the figure costs the same at any corpus size
+            counts, _ = np.histogram(vs, bins=bins)
+            ax.stairs(counts, bins, fill=True, color=colour, alpha=0.75, label=f"{name} ({vs.size:,})")
     for t in thresholds:
         ax.axvline(t, color=INK, ls="--", lw=1)
         ax.text(t, ax.get_ylim()[1], f" threshold {t:g}", va="top", fontsize=8, color=INK)
@@ -114,21 +130,31 @@ def agreement(values: list, kept: list, thresholds: list[float]) -> bytes | None
     return _png(fig)
 
 
-def sizes(widths: list, heights: list, kept: list, min_short: float | None, max_aspect: float | None) -> bytes | None:
+def _even(idx: np.ndarray, k: int) -> np.ndarray:
+    """At most k of these indices, evenly spaced (deterministic sampling)."""
+    if idx.size <= k:
+        return idx
+    return idx[np.linspace(0, idx.size - 1, k).astype(np.int64)]
+
+
+def sizes(widths: Any, heights: Any, kept: Any, min_short: float | None, max_aspect: float | None) -> bytes | None:
     """Width x height on log axes, kept vs dropped, with the short-side and aspect limits."""
-    pts = [(w, h, k) for w, h, k in zip(widths, heights, kept) if w and h and w > 0 and h > 0]
-    if not pts:
+    w, h, k = _arr(widths), _arr(heights), np.asarray(kept, dtype=bool)
+    ok = np.isfinite(w) & np.isfinite(h) & (w > 0) & (h > 0)
+    if not ok.any():
         return None
     fig, ax = _figure(6.0, 4.6)
     for flag, colour, name, mark in ((False, DROPPED, "dropped", "x"), (True, KEPT, "kept", "o")):
-        sel = [(w, h) for w, h, k in pts if bool(k) is flag]
-        if sel:
-            ax.scatter([w for w, _ in sel], [h for _, h in sel], s=10, c=colour, marker=mark,
-                       alpha=0.6, linewidths=0.8, label=f"{name} ({len(sel):,})")
+        sel = np.flatnonzero(ok & (k == flag))
+        if sel.size:
+            drawn = _even(sel, SCATTER_MAX // 2)
+            ax.scatter(w[drawn], h[drawn], s=10, c=colour, marker=mark, alpha=0.6, linewidths=0.8,
+                       label=f"{name} ({sel.size:,})")
+    ws, hs = w[ok], h[ok]
+    lo = float(min(np.minimum(ws, hs).min(), *([min_short] if min_short else []))) / 1.5
+    hi = float(np.maximum(ws, hs).max()) * 1.5
     ax.set_xscale("log")
     ax.set_yscale("log")
-    lo = min([min(w, h) for w, h, _ in pts] + ([min_short] if min_short else [])) / 1.5
-    hi = max(max(w, h) for w, h, _ in pts) * 1.5
     ax.set_xlim(lo, hi)
     ax.set_ylim(lo, hi)
     if min_short:
@@ -143,9 +169,19 @@ def sizes(widths: list, heights: list, kept: list, min_short: float | None, max_
     return _png(fig)
 
 
-def group_sizes(group_ids: list) -> bytes | None:
+def group_sizes(group_ids: Any) -> bytes | None:
     """How many near-duplicate groups there are of each size (groups of one left out)."""
-    per_size = Counter(n for n in Counter(g for g in group_ids if g is not None).values() if n > 1)
+    if group_ids is None:
+        return None
+    if isinstance(group_ids, list):
+        per_size = Counter(n for n in Counter(g for g in group_ids if g is not None).values() if n > 1)
+    else:
+        import pyarrow.compute as pc
+
+        col = group_ids.combine_chunks() if hasattr(group_ids, "combine_chunks") else group_ids
+        vc = pc.value_counts(col.drop_null() if hasattr(col, "drop_null") else col)
+        counts = vc.field("counts").to_numpy() if len(vc) else np.zeros(0, np.int64)
+        per_size = Counter({int(s): int(c) for s, c in zip(*np.unique(counts[counts > 1], return_counts=True))})
     if not per_size:
         return None
     xs = sorted(per_size)
@@ -159,3 +195,4 @@ def group_sizes(group_ids: list) -> bytes | None:
     ax.set_xlabel("samples in the group", fontsize=9)
     ax.set_ylabel("groups", fontsize=9)
     return _png(fig)
+

@@ -1,6 +1,6 @@
 """Every stage module registers itself on import; importing this package loads them all.
 
-Registration order does not matter: curate.plan.ORDER fixes the run order.
+Registration order does not matter: curate.plan orders the stages from their declared columns.
 """
-from .base import REGISTRY, SECTIONS, CheckSpec, Stage, StageContext, all_checks, section_of  # noqa: F401
-from . import inspect, hashes, caption, embed, agreement, neardup, risk, split, pack  # noqa: F401,E401
+from . import agreement, caption, embed, faces, hashes, inspect, neardup, pack, quality, review, risk, split, watermark  # noqa: F401
+from .base import REGISTRY, SECTIONS, CheckSpec, Column, ConfigView, Stage, StageContext, all_checks  # noqa: F401

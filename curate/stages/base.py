@@ -1,78 +1,115 @@
-"""The one contract every stage follows, and the registry the runner reads.
+"""The one contract every stage follows, and the registry the plan reads.
 
-A stage is a name, a typed config (a dataclass), a version string, the
-stages whose columns it reads, and a function. A per-shard stage maps one
-shard's Arrow table (the `source` table joined with its inputs' columns, same
-rows in the same order) to an Arrow table of new columns keyed by
-`sample_id`, one row per input row, in the same order. A global stage gets
-the same join over all shards at once and returns one table for all samples.
+A stage is one module that registers itself with the `@stage(...)` decorator on
+its function. The declaration says:
 
-Stages never raise for one bad sample: they record a failed check and go on.
-Every check a stage makes is recorded in its `<stage>.checks` column, so
-`curate explain` can show value, threshold and verdict for each.
+- `name`, `version`, `config` (a dataclass; its config section is the stage's
+  name unless `section=` says otherwise) and `sections`: the other config
+  sections it may read. The stage sees a view of exactly those sections, and
+  its fingerprint covers exactly them.
+- `needs` / `wants`: the columns it reads (`wants`: only when an active stage
+  provides them). `provides`: the columns it adds, with Arrow types, and
+  whether each reaches the ledger and the output shards. A column can be
+  `transient` (the decoded image): it lives only inside one per-shard pass.
+- `checks`: the reason codes it can emit, with default actions.
+- `kind`: "shard" (a pure function of one shard's rows, any subset of them) or
+  "global" (sees every sample at once); `phase`: where it sits in the run
+  (`PHASES`); `alive_only`: it sees only samples that no earlier check
+  dropped (the runner filters and fills the rest with nulls).
+
+A stage maps a table of samples to a table of its provided columns plus
+`sample_id` and its `<name>.checks` column, one row per input row in the same
+order. It never raises for one bad sample: it records a failed check.
 """
 from __future__ import annotations
 
 import dataclasses
 from dataclasses import dataclass, field
-from typing import Any, Callable, Literal
+from typing import Any, Callable, Iterable, Literal
 
 import pyarrow as pa
 
-# One check result. `code` is the reason code (see Stage.checks); `value` and
-# `threshold` are human-readable strings; `failed` says the check did not pass.
-CHECK_TYPE = pa.struct(
-    [
-        ("code", pa.string()),
-        ("value", pa.string()),
-        ("threshold", pa.string()),
-        ("failed", pa.bool_()),
-    ]
-)
-CHECKS_TYPE = pa.list_(CHECK_TYPE)
+from ..checks import ACTIONS, CHECKS_TYPE, family
+
+# Where a stage sits in a run, in order. "check": cheap per-sample checks and corpus-wide checks on
+# small columns; "model": embeddings and the checks that read them; "group": decontamination and
+# near-duplicate groups; "assign": the train/eval split. A stage never needs a column from a later phase.
+PHASES = ("check", "model", "group", "assign")
 
 
-def check(code: str, value: Any, threshold: Any, failed: bool) -> dict:
-    """One check record, ready to go into a `checks` list column."""
-    return {
-        "code": code,
-        "value": None if value is None else _fmt(value),
-        "threshold": None if threshold is None else _fmt(threshold),
-        "failed": bool(failed),
-    }
+@dataclass(frozen=True)
+class Column:
+    """A column a stage provides."""
 
-
-def _fmt(v: Any) -> str:
-    if isinstance(v, float):
-        return f"{v:.4g}"
-    return str(v)
-
-
-def checks_column(name: str) -> str:
-    """Column that holds a stage's list of check records."""
-    return f"{name}.checks"
+    name: str
+    type: pa.DataType
+    help: str = ""
+    ledger: bool = True  # written to ledger.parquet
+    shard: bool = False  # written to the output shards
+    transient: bool = False  # lives only inside one per-shard pass (never written)
 
 
 @dataclass(frozen=True)
 class CheckSpec:
-    """A reason code a stage can emit, its default action and what it means."""
+    """A reason code (or a family like `pii`, whose codes are `pii:<kind>`), its default action,
+    the actions a user may choose for it, and what it means."""
 
     code: str
-    action: Literal["drop", "flag", "keep"]
+    action: str
     help: str
+    allowed: tuple[str, ...] = ("drop", "flag", "keep")
+    # Screening flags (faces, personal data, watermarks...) set to drop are recorded as `risk:<code>`.
+    risk: bool = False
+
+    def __post_init__(self) -> None:
+        if self.action not in self.allowed or not set(self.allowed) <= set(ACTIONS):
+            raise ValueError(f"check {self.code}: default {self.action!r} not among allowed {self.allowed}")
+
+
+class ConfigView:
+    """The sections of the resolved config one stage may read; anything else is a bug in the stage."""
+
+    def __init__(self, config: Any, sections: Iterable[str], stage: str):
+        self._config = config
+        self._sections = tuple(dict.fromkeys(sections))
+        self._stage = stage
+        self.origin = getattr(config, "origin", None)
+
+    def section(self, name: str) -> Any:
+        if name not in self._sections:
+            raise KeyError(f"stage {self._stage} reads config section [{name}] without declaring it "
+                           f"(declared: {', '.join(self._sections)})")
+        return self._config.section(name)
+
+    def __getattr__(self, name: str) -> Any:
+        if name.startswith("_"):
+            raise AttributeError(name)
+        try:
+            return self.section(name)
+        except KeyError as e:
+            raise AttributeError(str(e)) from None
+
+    def sections(self) -> tuple[str, ...]:
+        return self._sections
+
+    def to_dict(self) -> dict[str, dict]:
+        return {s: dataclasses.asdict(self._config.section(s)) for s in self._sections}
 
 
 @dataclass
 class StageContext:
-    """What the runner hands a stage besides its table: the resolved config and services."""
+    """What the runner hands a stage besides its table and its own config section."""
 
-    config: Any  # curate.config.PipelineConfig
+    config: ConfigView
     shard: str | None = None
     workers: int = 1
     progress: Any = None  # curate.progress.Progress or None
     work_dir: str | None = None
-    input_root: str | None = None
     extra: dict = field(default_factory=dict)
+
+
+ColumnsArg = tuple[Column, ...] | Callable[[ConfigView], Iterable[Column]]
+NamesArg = tuple[str, ...] | Callable[[ConfigView], Iterable[str]]
 
 
 @dataclass(frozen=True)
@@ -81,27 +118,58 @@ class Stage:
     version: str
     config_cls: type
     fn: Callable[[pa.Table, Any, StageContext], pa.Table]
-    kind: Literal["shard", "global"] = "shard"
-    inputs: tuple[str, ...] = ()
-    # Other config sections whose values change this stage's output (fingerprint).
-    reads_sections: tuple[str, ...] = ()
+    kind: Literal["shard", "global"]
+    phase: str
+    needs: NamesArg = ()
+    wants: NamesArg = ()
+    provides: ColumnsArg = ()
     checks: tuple[CheckSpec, ...] = ()
-    # "process": the runner may fan shards out to worker processes;
-    # "inline": runs in the main process (it manages its own threads/workers).
-    parallel: Literal["process", "inline"] = "process"
-    # Runs only when this returns True for the resolved config (default: its section's `enabled`).
-    active: Callable[[Any], bool] | None = None
-    # Config section this stage reads (default: its name). Two stages may share one section.
+    sections: tuple[str, ...] = ()
     section: str | None = None
-    # Extra identity (e.g. model name, weights checksum) from the resolved config: goes into the
-    # fingerprint and into manifest.json. Called once per run in the main process.
-    identity: Callable[[Any], dict] | None = None
+    alive_only: bool = False
+    after: tuple[str, ...] = ()
+    # "process": shards may fan out to worker processes; "inline": runs in the main process
+    # (it manages its own threads and workers, e.g. a model).
+    parallel: Literal["process", "inline"] = "process"
+    # Extra identity (model name, weights digest, library versions) for the fingerprint and manifest.
+    identity: Callable[[ConfigView], dict] | None = None
+    # Input columns that, with the stage's config, determine a row's output: rows whose key an earlier
+    # output of the stage holds are copied from it instead of computed (expensive per-sample stages).
+    cache_key: tuple[str, ...] = ()
+    # Extra activity condition beyond the section's `enabled` flag.
+    active_if: Callable[[ConfigView], bool] | None = None
+    doc: str = ""
+
+    @property
+    def config_section(self) -> str:
+        return self.section or self.name
+
+    @property
+    def checks_column(self) -> str:
+        return checks_column(self.name)
+
+    def view(self, config: Any) -> ConfigView:
+        return ConfigView(config, (self.config_section, *self.sections), self.name)
+
+    def columns(self, view: ConfigView) -> tuple[Column, ...]:
+        cols = self.provides(view) if callable(self.provides) else self.provides
+        return tuple(cols)
+
+    def needed(self, view: ConfigView) -> tuple[str, ...]:
+        return tuple(self.needs(view) if callable(self.needs) else self.needs)
+
+    def wanted(self, view: ConfigView) -> tuple[str, ...]:
+        return tuple(self.wants(view) if callable(self.wants) else self.wants)
 
 
 REGISTRY: dict[str, Stage] = {}
-# Config sections that belong to no runnable stage of their own (e.g. `hashes`, computed inside
-# the inspect pass) but still need a typed config: name -> dataclass.
+# Config sections that belong to no stage (e.g. `pack`, read by the shard writer): name -> dataclass.
 SECTIONS: dict[str, type] = {}
+
+
+def checks_column(name: str) -> str:
+    """Column that holds a stage's list of check records."""
+    return f"{name}.checks"
 
 
 def register_section(name: str, config_cls: type) -> type:
@@ -109,21 +177,42 @@ def register_section(name: str, config_cls: type) -> type:
     return config_cls
 
 
-def register(stage: Stage) -> Stage:
-    if stage.name in REGISTRY:
-        raise ValueError(f"stage {stage.name!r} registered twice")
-    if not dataclasses.is_dataclass(stage.config_cls):
-        raise TypeError(f"stage {stage.name!r}: config_cls must be a dataclass")
-    REGISTRY[stage.name] = stage
-    return stage
+def stage(*, name: str, version: str, config: type, kind: Literal["shard", "global"], phase: str,
+          **kw: Any) -> Callable[[Callable], Callable]:
+    """Register the decorated function as a stage (see the module docstring for the fields)."""
+
+    def deco(fn: Callable) -> Callable:
+        register(Stage(name=name, version=version, config_cls=config, fn=fn, kind=kind, phase=phase,
+                       doc=(fn.__doc__ or "").strip().split("\n")[0], **kw))
+        return fn
+
+    return deco
 
 
-def section_of(stage: Stage) -> str:
-    return stage.section or stage.name
+def register(st: Stage) -> Stage:
+    if st.name in REGISTRY:
+        raise ValueError(f"stage {st.name!r} registered twice")
+    if not dataclasses.is_dataclass(st.config_cls):
+        raise TypeError(f"stage {st.name!r}: config must be a dataclass")
+    if st.phase not in PHASES:
+        raise ValueError(f"stage {st.name!r}: phase must be one of {PHASES}, got {st.phase!r}")
+    if st.kind not in ("shard", "global"):
+        raise ValueError(f"stage {st.name!r}: kind must be 'shard' or 'global'")
+    codes = [c.code for c in st.checks]
+    taken = {c.code for s in REGISTRY.values() for c in s.checks}
+    if len(set(codes)) != len(codes) or taken & set(codes):
+        raise ValueError(f"stage {st.name!r}: reason codes {sorted(taken & set(codes))} are already registered")
+    REGISTRY[st.name] = st
+    return st
+
+
+def unregister(name: str) -> None:
+    """Remove a stage (tests that register a stage of their own clean up with this)."""
+    REGISTRY.pop(name, None)
 
 
 def all_checks() -> dict[str, CheckSpec]:
-    """Every reason code any registered stage can emit, by code."""
+    """Every reason code or code family any registered stage can emit, by code."""
     out: dict[str, CheckSpec] = {}
     for st in REGISTRY.values():
         for c in st.checks:
@@ -131,4 +220,10 @@ def all_checks() -> dict[str, CheckSpec]:
     return out
 
 
-from ..policy import base_code  # noqa: E402,F401  (one definition, re-exported for stages)
+def spec_for(code: str, specs: dict[str, CheckSpec]) -> CheckSpec | None:
+    """The spec of a code: its own, or its family's (`pii` for `pii:email`)."""
+    return specs.get(code) or specs.get(family(code))
+
+
+def empty_checks(n: int) -> pa.Array:
+    return pa.array([[] for _ in range(n)], type=CHECKS_TYPE)

@@ -9,16 +9,19 @@ runs in the global `caption_repeats` stage below.
 """
 from __future__ import annotations
 
+import html
 import re
 import unicodedata
 from dataclasses import dataclass, field
 
 import pyarrow as pa
 
-from .base import CHECKS_TYPE, CheckSpec, Stage, StageContext, check, checks_column, register
+from ..checks import CHECKS_TYPE, check
+from ..sources.base import CAPTION_PROBLEMS
+from .base import CheckSpec, Column, StageContext, checks_column, stage
 
 NAME = "caption"
-VERSION = "1"
+VERSION = "2"
 
 # Common placeholder captions of scraped and exported archives (common practice).
 DEFAULT_BOILERPLATE = [
@@ -47,15 +50,25 @@ class CaptionConfig:
     boilerplate: list[str] = field(default_factory=lambda: list(DEFAULT_BOILERPLATE))
 
     def validate(self) -> None:
+        for k in ("min_chars", "max_chars", "min_tokens", "max_tokens"):
+            if getattr(self, k) < 0:
+                raise ValueError(f"{k} must be >= 0, got {getattr(self, k)}")
         if self.min_chars > self.max_chars:
             raise ValueError("min_chars must be <= max_chars")
         if self.max_repeats < 2:
             raise ValueError("max_repeats must be >= 2")
 
 
+COLUMNS = (
+    Column("caption", pa.string(), "the caption after repair and normalisation", shard=True),
+    Column("caption_chars", pa.int32(), "characters in the caption"),
+    Column("caption_tokens", pa.int32(), "CLIP tokens, start and end tokens included", shard=True),
+    Column("caption_repaired", pa.bool_(), "the text was changed by repair or normalisation"),
+    Column("caption_key", pa.string(), "the caption folded for counting repeats", ledger=False),
+)
+
 CHECKS = (
-    CheckSpec("caption_missing", "drop", "no caption sidecar, field or cell"),
-    CheckSpec("caption_unreadable", "drop", "the caption file could not be read or parsed"),
+    *(CheckSpec(code, "drop", help) for code, help in CAPTION_PROBLEMS.items()),
     CheckSpec("caption_empty", "drop", "the caption is empty after normalisation"),
     CheckSpec("caption_short", "drop", "fewer characters than the minimum"),
     CheckSpec("caption_long", "drop", "more characters than the maximum"),
@@ -63,6 +76,8 @@ CHECKS = (
     CheckSpec("caption_many_tokens", "flag", "more CLIP tokens than the text encoder reads; the rest is cut"),
     CheckSpec("caption_filename", "drop", "the caption looks like a file or camera name"),
     CheckSpec("caption_boilerplate", "drop", "a placeholder caption such as 'image' or 'untitled'"),
+)
+REPEAT_CHECKS = (
     CheckSpec("caption_repeated", "drop", "the same caption text on many different images"),
 )
 
@@ -95,14 +110,43 @@ def decode_caption(raw: bytes) -> tuple[str, bool]:
         return raw.decode("latin-1"), True
 
 
+# An HTML character reference with its closing ';' (HTML Living Standard, "character references"):
+# named (&eacute;), decimal (&#233;) or hexadecimal (&#xE9;). Without the ';' it is left as text.
+_CHAR_REF = re.compile(r"&(?:#[0-9]{1,7}|#[xX][0-9a-fA-F]{1,6}|[A-Za-z][A-Za-z0-9]{1,31});")
+_MARKUP = re.compile(r"[<>]")
+
+
+def _decode_ref(m: re.Match) -> str:
+    ref = m.group()
+    text = html.unescape(ref)
+    return ref if _MARKUP.search(text) else text
+
+
+def decode_entities(text: str) -> str:
+    """HTML character references -> the characters they name, except any that would give `<` or `>`
+    (`&lt;`, `&#60;`, `&GT;`, ...): those stay as written, so decoding never creates markup.
+
+    Repeated until nothing changes, so double-escaped text (`&amp;amp;`) reads `&`; each pass
+    shortens the text, so this ends.
+    """
+    while True:
+        decoded = _CHAR_REF.sub(_decode_ref, text)
+        if decoded == text:
+            return text
+        text = decoded
+
+
 def normalize(text: str) -> str:
-    """ftfy repair, NFC, control characters removed, whitespace collapsed."""
+    """Entity decoding (decode_entities), ftfy repair, NFC, control characters removed, whitespace collapsed.
+
+    ftfy's own entity decoding is off: it would turn `&lt;script&gt;` into `<script>`.
+    """
     import ftfy
 
     for _ in range(3):  # ftfy repairs one layer of mojibake at a time; stop at a fixed point
         before = text
-        text = _CONTROL.sub(" ", text)
-        text = ftfy.fix_text(text, normalization="NFC")
+        text = decode_entities(_CONTROL.sub(" ", text))
+        text = ftfy.fix_text(text, normalization="NFC", unescape_html=False)
         text = unicodedata.normalize("NFC", _CONTROL.sub(" ", text))
         text = _SPACE.sub(" ", text).strip()
         if text == before:
@@ -127,59 +171,61 @@ def clip_token_count(text: str) -> int:
     return count_tokens(text) + 2
 
 
+def caption_checks(text: str, tokens: int, key: str, cfg: CaptionConfig, boiler: set[str]) -> list[dict]:
+    """The per-caption checks of one normalised, non-empty caption."""
+    chars = len(text)
+    return [
+        check("caption_short", value=chars, threshold=cfg.min_chars, op=">=", unit="chars"),
+        check("caption_long", value=chars, threshold=cfg.max_chars, op="<=", unit="chars"),
+        check("caption_few_tokens", value=tokens - 2, threshold=cfg.min_tokens, op=">=", unit="tokens"),
+        check("caption_many_tokens", value=tokens, threshold=cfg.max_tokens, op="<=", unit="tokens"),
+        check("caption_filename", failed=looks_like_filename(text), detail=text[:40]),
+        check("caption_boilerplate", failed=key in boiler, detail=text[:40]),
+    ]
+
+
+@stage(name=NAME, version=VERSION, config=CaptionConfig, kind="shard", phase="check",
+       needs=("caption_raw", "caption_problem"), provides=COLUMNS, checks=CHECKS)
 def run(table: pa.Table, cfg: CaptionConfig, ctx: StageContext) -> pa.Table:
+    """Repair and normalise each caption, then check its length, tokens and kind."""
     boiler = {caption_key(b) for b in cfg.boilerplate}
     raws = table.column("caption_raw").to_pylist()
     problems = table.column("caption_problem").to_pylist()
-    out_caption, out_chars, out_tokens, out_repaired, out_key, out_checks = [], [], [], [], [], []
+    out: dict[str, list] = {c.name: [] for c in COLUMNS}
+    out_checks = []
     for raw, problem in zip(raws, problems):
-        chks: list[dict] = []
         text = chars = tokens = key = None
         repaired = False
         if problem is not None or raw is None:
-            chks.append(check(problem or "caption_missing", "no caption", None, True))
+            chks = [check(problem or "caption_missing", failed=True, detail="no caption")]
         else:
             decoded, repaired = decode_caption(raw)
             text = normalize(decoded)
             repaired = repaired or text != _SPACE.sub(" ", decoded).strip()
             chars = len(text)
             if not text:
-                chks.append(check("caption_empty", 0, ">0 chars", True))
+                chks = [check("caption_empty", value=0, threshold=0, op=">", unit="chars")]
                 text = None
             else:
                 tokens = clip_token_count(text)
                 key = caption_key(text)
-                chks += [
-                    check("caption_short", chars, f">={cfg.min_chars} chars", chars < cfg.min_chars),
-                    check("caption_long", chars, f"<={cfg.max_chars} chars", chars > cfg.max_chars),
-                    check("caption_few_tokens", tokens - 2, f">={cfg.min_tokens} tokens", tokens - 2 < cfg.min_tokens),
-                    check("caption_many_tokens", tokens, f"<={cfg.max_tokens} tokens", tokens > cfg.max_tokens),
-                    check("caption_filename", text[:40], "not a file name", looks_like_filename(text)),
-                    check("caption_boilerplate", text[:40], "not a placeholder", key in boiler),
-                ]
-        out_caption.append(text)
-        out_chars.append(chars)
-        out_tokens.append(tokens)
-        out_repaired.append(repaired)
-        out_key.append(key)
+                chks = caption_checks(text, tokens, key, cfg, boiler)
+        for name, v in (("caption", text), ("caption_chars", chars), ("caption_tokens", tokens),
+                        ("caption_repaired", repaired), ("caption_key", key)):
+            out[name].append(v)
         out_checks.append(chks)
         if ctx.progress is not None:
             ctx.progress.advance(1)
-    return pa.table(
-        {
-            "sample_id": table.column("sample_id"),
-            "caption": pa.array(out_caption, pa.string()),
-            "caption_chars": pa.array(out_chars, pa.int32()),
-            "caption_tokens": pa.array(out_tokens, pa.int32()),
-            "caption_repaired": pa.array(out_repaired, pa.bool_()),
-            "caption_key": pa.array(out_key, pa.string()),
-            checks_column(NAME): pa.array(out_checks, type=CHECKS_TYPE),
-        }
-    )
+    arrays = [table.column("sample_id")] + [pa.array(out[c.name], c.type) for c in COLUMNS]
+    arrays.append(pa.array(out_checks, type=CHECKS_TYPE))
+    return pa.Table.from_arrays(arrays, names=["sample_id", *[c.name for c in COLUMNS], checks_column(NAME)])
 
 
+@stage(name="caption_repeats", section=NAME, version=VERSION, config=CaptionConfig, kind="global", phase="check",
+       needs=("caption_key",), wants=("sha256",), checks=REPEAT_CHECKS, parallel="inline",
+       provides=(Column("caption_images", pa.int32(), "distinct images that carry this caption"),))
 def run_repeats(table: pa.Table, cfg: CaptionConfig, ctx: StageContext) -> pa.Table:
-    """Global: a caption on >= max_repeats distinct images (by sha256, else by sample) fails for all of them."""
+    """A caption on >= max_repeats distinct images (by sha256, else by sample) fails for all of them."""
     import pandas as pd
 
     df = pd.DataFrame(
@@ -189,7 +235,7 @@ def run_repeats(table: pa.Table, cfg: CaptionConfig, ctx: StageContext) -> pa.Ta
             "sid": table.column("sample_id").to_pandas(),
         }
     )
-    df["img"] = df["img"].fillna(df["sid"]) if "img" in df else df["sid"]
+    df["img"] = df["img"].fillna(df["sid"]) if df["img"].notna().any() else df["sid"]
     counts = df.dropna(subset=["key"]).groupby("key")["img"].nunique()
     n = df["key"].map(counts)
     out_checks = []
@@ -201,9 +247,7 @@ def run_repeats(table: pa.Table, cfg: CaptionConfig, ctx: StageContext) -> pa.Ta
             continue
         cnt = int(cnt)
         out_n.append(cnt)
-        out_checks.append(
-            [check("caption_repeated", f"{cnt} images", f"<{cfg.max_repeats} images", cnt >= cfg.max_repeats)]
-        )
+        out_checks.append([check("caption_repeated", value=cnt, threshold=cfg.max_repeats, op="<", unit="images")])
     return pa.table(
         {
             "sample_id": table.column("sample_id"),
@@ -211,21 +255,3 @@ def run_repeats(table: pa.Table, cfg: CaptionConfig, ctx: StageContext) -> pa.Ta
             checks_column("caption_repeats"): pa.array(out_checks, type=CHECKS_TYPE),
         }
     )
-
-
-register(
-    Stage(name=NAME, version=VERSION, config_cls=CaptionConfig, fn=run, kind="shard", checks=CHECKS)
-)
-register(
-    Stage(
-        name="caption_repeats",
-        section="caption",
-        version=VERSION,
-        config_cls=CaptionConfig,
-        fn=run_repeats,
-        kind="global",
-        inputs=("inspect", "caption"),
-        checks=(),
-        parallel="inline",
-    )
-)

@@ -9,20 +9,21 @@ curate.models.clip.LoadedModel.encode_texts). Embeddings are L2-normalised float
 """
 from __future__ import annotations
 
+import functools
 import io
 import logging
 import math
 import os
 from dataclasses import dataclass, field
-from typing import Any
 
 import numpy as np
 import pyarrow as pa
 
-from .base import CHECKS_TYPE, CheckSpec, Stage, StageContext, check, checks_column, register
+from ..checks import CHECKS_TYPE, check
+from .base import CheckSpec, Column, ConfigView, StageContext, checks_column, stage
 
 NAME = "embed"
-VERSION = "1"
+VERSION = "2"
 log = logging.getLogger(__name__)
 
 
@@ -86,6 +87,30 @@ def output_schema(dim: int) -> pa.Schema:
                       (checks_column(NAME), CHECKS_TYPE)])
 
 
+@functools.lru_cache(maxsize=8)
+def embed_dim(model: str, pretrained: str) -> int:
+    """The model's embedding size, read from its config without building it (ModelError when unknown)."""
+    from ..models import clip as clipmod
+
+    ref = clipmod.resolve(model, pretrained)
+    if ref.config_path is not None:
+        data = clipmod.read_json_config(ref.config_path)
+        model_cfg = data.get("model_cfg", data)
+    else:
+        import open_clip
+
+        model_cfg = open_clip.get_model_config(ref.arch)
+    return int(model_cfg["embed_dim"])
+
+
+def columns(view: ConfigView) -> tuple[Column, ...]:
+    """Image and caption embeddings; their width is the model's embedding size."""
+    cfg = view.section(NAME)
+    vec = pa.list_(pa.float16(), embed_dim(cfg.model, cfg.pretrained))
+    return (Column("image_emb", vec, "CLIP image embedding (L2-normalised)", ledger=False),
+            Column("text_emb", vec, "CLIP caption embedding (L2-normalised)", ledger=False))
+
+
 def decode_for_model(data: bytes | BaseException, steps: list, draft_px: int) -> np.ndarray:
     """Image bytes -> uint8 HxWx3 pixels after open_clip's eval resize and crop."""
     import warnings
@@ -112,8 +137,9 @@ class ImageChunks:
     """Work items for decode workers: item i = (i, pixels [n, H, W, 3] uint8, errors [n])."""
 
     def __init__(self, locators: list[str], steps: list, size_hw: tuple[int, int], draft_px: int,
-                 chunk: int = CHUNK):
+                 chunk: int = CHUNK, max_bytes: int | None = None):
         self.locators = locators
+        self.max_bytes = max_bytes
         self.steps = steps
         self.size_hw = size_hw
         self.draft_px = draft_px
@@ -128,7 +154,7 @@ class ImageChunks:
         locs = self.locators[i * self.chunk:(i + 1) * self.chunk]
         pixels = np.zeros((len(locs), self.size_hw[0], self.size_hw[1], 3), dtype=np.uint8)
         errors: list[str | None] = [None] * len(locs)
-        for j, data in enumerate(read_bytes(locs)):
+        for j, data in enumerate(read_bytes(locs, max_bytes=self.max_bytes)):
             try:
                 arr = decode_for_model(data, self.steps, self.draft_px)
                 if arr.shape != pixels.shape[1:]:
@@ -167,7 +193,11 @@ def iter_chunks(dataset: ImageChunks, workers: int):
         yield int(i), np.asarray(pixels), list(errors)
 
 
+@stage(name=NAME, version=VERSION, config=EmbedConfig, kind="shard", phase="model", alive_only=True, sections=("input",),
+       needs=("locator", "caption", "decoded", "sha256"), provides=columns, checks=CHECKS,
+       parallel="inline", cache_key=("sha256", "caption"), identity=lambda view: identity(view))
 def run(table: pa.Table, cfg: EmbedConfig, ctx: StageContext) -> pa.Table:
+    """CLIP image and caption embeddings of every live sample."""
     import torch
 
     from ..models import clip as clipmod
@@ -178,7 +208,7 @@ def run(table: pa.Table, cfg: EmbedConfig, ctx: StageContext) -> pa.Table:
     n = table.num_rows
     decoded = table.column("decoded").to_pylist()
     captions = table.column("caption").to_pylist()
-    shas = table.column("sha256").to_pylist()
+    shas = table.column("sha256").to_pylist() if "sha256" in table.column_names else [None] * n
     locators = table.column("locator").to_pylist()
     eligible = [i for i in range(n) if decoded[i] is True and captions[i] is not None]
 
@@ -205,7 +235,8 @@ def run(table: pa.Table, cfg: EmbedConfig, ctx: StageContext) -> pa.Table:
     torch.set_num_threads(cfg.threads or available_cores())
     try:
         draft_px = DRAFT_MARGIN * max(lm.image_size) if cfg.jpeg_draft else 0
-        dataset = ImageChunks(image_locs, lm.pil_steps(), lm.image_size, draft_px)
+        dataset = ImageChunks(image_locs, lm.pil_steps(), lm.image_size, draft_px,
+                              max_bytes=ctx.config.section("input").max_file_bytes)
         workers = decode_worker_count(cfg, lm.device) if len(image_locs) > cfg.batch_size else 0
         chunks = iter_chunks(dataset, workers)  # workers start decoding on the first next()
         first = next(chunks, None)
@@ -264,33 +295,42 @@ def _assemble(table: pa.Table, dim: int, row_image: np.ndarray, row_text: np.nda
     checks = []
     for i in range(n):
         k = row_image[i]
-        checks.append([check("embed_error", img_err[k], None, True)] if k >= 0 and img_err[k] is not None else [])
+        checks.append([check("embed_error", failed=True, detail=img_err[k])] if k >= 0 and img_err[k] is not None
+                      else [])
     return pa.Table.from_arrays(
         [table.column("sample_id"), column(img_rows), column(txt_rows), pa.array(checks, type=CHECKS_TYPE)],
         schema=output_schema(dim),
     )
 
 
-def identity(config: Any) -> dict:
+def identity(view: ConfigView) -> dict:
     """Model name, tag or path and weights checksum (downloads tagged weights on first use)."""
     from ..models import clip as clipmod
 
-    cfg = config.section(NAME)
+    cfg = view.section(NAME)
     out = clipmod.identity(cfg.model, cfg.pretrained, cfg.cache_dir or None)
     out["quantize"] = bool(cfg.quantize)
+    ref = clipmod.resolve(cfg.model, cfg.pretrained)
+    if ref.weights_path:
+        check_checkpoint(ref.weights_path)
     return out
 
 
-register(
-    Stage(
-        name=NAME,
-        version=VERSION,
-        config_cls=EmbedConfig,
-        fn=run,
-        kind="shard",
-        inputs=("inspect", "caption"),
-        checks=CHECKS,
-        parallel="inline",
-        identity=identity,
-    )
-)
+def check_checkpoint(path: str) -> None:
+    """Read a local checkpoint's tensor index (all of a pickle), so a damaged file stops the run before
+    any stage starts rather than after the cheap checks (ModelError)."""
+    from ..errors import ModelError
+    from ..models import clip as clipmod
+
+    if path.lower().endswith(".safetensors"):
+        from safetensors import safe_open
+
+        try:
+            with safe_open(path, framework="numpy") as f:
+                names = list(f.keys())
+        except Exception as e:  # noqa: BLE001 - any parse failure means a damaged or foreign file
+            raise ModelError(f"checkpoint {path} is damaged or not a safetensors file: {e}") from e
+        if not names:
+            raise ModelError(f"checkpoint {path} holds no tensors")
+    else:
+        clipmod.read_state_dict(path)

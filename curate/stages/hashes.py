@@ -1,11 +1,9 @@
-"""hashes: perceptual hash codes of every decoded image, computed inside the inspect pass.
+"""hashes: perceptual hash codes of every decoded image, in the same pass as inspect.
 
-No stage of its own: inspect calls `hash_columns` on the image it has already decoded (RGB, EXIF
-orientation applied, alpha on white, maybe JPEG draft-decoded), so nothing is decoded twice. The
-codes are 64-bit imagehash codes of several views (centred and edge-anchored crops, corners masked,
-optionally mirrored), one list per sample; `neardup`, `split` and `leakcheck` compare two samples
-by the closest pair of their views (`curate.hashing.min_distance`). Every setting below is in the
-`hashes` section, which inspect's and neardup's fingerprints include.
+It reads the image inspect has already decoded (RGB, EXIF orientation applied, alpha on white,
+maybe JPEG draft-decoded), so nothing is decoded twice. The codes are 64-bit imagehash codes of
+several views (centred and edge-anchored crops, corners masked, optionally mirrored), one list per
+sample; `neardup`, `split` and `leakcheck` compare two samples by the closest pair of their views.
 """
 from __future__ import annotations
 
@@ -16,11 +14,14 @@ import numpy as np
 import pyarrow as pa
 
 from .. import hashing
-from .base import register_section
+from ..checks import CHECKS_TYPE
+from ..imaging import decoded
+from .base import Column, ConfigView, StageContext, checks_column, stage
 
 NAME = "hashes"
 # Bump when the codes for the same settings change (image_codes' processing).
-VERSION = "1"
+VERSION = "2"
+CODES = "hash_codes"
 
 
 @dataclass
@@ -57,26 +58,23 @@ class HashesConfig:
             raise ValueError(f"work_size must be 0 (off) or at least 32, got {self.work_size}")
 
 
-register_section(NAME, HashesConfig)
-
-
-def codes_column(cfg: HashesConfig) -> str:
-    """Name of the column that holds the codes: the hash kind (``phash`` or ``dhash``)."""
-    return cfg.kind
-
-
 def variants(cfg: HashesConfig) -> int:
     """Codes per sample."""
     return hashing.variant_count(cfg.scales, cfg.side_scale, cfg.flip)
 
 
-def hash_fields(cfg: HashesConfig) -> list[pa.Field]:
-    """Columns inspect adds: one fixed-size list of uint64 codes per sample (null when not decoded)."""
-    return [pa.field(codes_column(cfg), pa.list_(pa.uint64(), variants(cfg)))]
+def columns(view: ConfigView) -> tuple[Column, ...]:
+    """One fixed-size list of uint64 codes per sample (null when not decoded)."""
+    k = variants(view.section(NAME))
+    return (Column(CODES, pa.list_(pa.uint64(), k), "perceptual codes of the image's views", ledger=False),)
 
 
-def hash_columns(img: Any, cfg: HashesConfig) -> dict[str, Any]:
-    """The hash columns' values for one decoded image (RGB Pillow image)."""
+def image_codes(img: Any, cfg: HashesConfig) -> list[int]:
+    """The codes of one decoded image (RGB Pillow image or HxWx3 uint8 array)."""
+    if isinstance(img, np.ndarray):
+        from PIL import Image
+
+        img = Image.fromarray(img, "RGB")
     codes = hashing.image_codes(
         img,
         kind=cfg.kind,
@@ -86,7 +84,28 @@ def hash_columns(img: Any, cfg: HashesConfig) -> dict[str, Any]:
         flip=cfg.flip,
         work_size=cfg.work_size,
     )
-    return {codes_column(cfg): [int(c) for c in codes]}
+    return [int(c) for c in codes]
+
+
+@stage(name=NAME, version=VERSION, config=HashesConfig, kind="shard", phase="check", needs=("image", "sha256"),
+       sections=("inspect",), provides=columns, cache_key=("sha256",), identity=lambda view: identity())
+def run(table: pa.Table, cfg: HashesConfig, ctx: StageContext) -> pa.Table:
+    """Perceptual codes of every decoded image's views."""
+    out: list[list[int] | None] = []
+    for item in decoded.images(table.column("image")):
+        out.append(None if item is None else image_codes(item[0], cfg))
+        if ctx.progress is not None:
+            ctx.progress.advance(1)
+    col = columns(ctx.config)[0]
+    return pa.Table.from_arrays(
+        [table.column("sample_id"), pa.array(out, type=col.type), pa.array([[]] * len(out), type=CHECKS_TYPE)],
+        names=["sample_id", CODES, checks_column(NAME)])
+
+
+def identity() -> dict:
+    import imagehash
+
+    return {"imagehash": imagehash.__version__}
 
 
 def codes_matrix(column: pa.ChunkedArray | pa.Array, k: int) -> tuple[np.ndarray, np.ndarray]:

@@ -7,9 +7,11 @@ brute force), and, when the embed stage ran and `semantic` is on, image embeddin
 `cosine` (SemDeDup-style search within k-means clusters beyond `cosine_exact_max` samples). Linked
 samples form groups (union-find, so links chain).
 
-The keeper of a group is, in order: a sample no other check drops, the most pixels (width*height),
-the highest agreement, the smallest sample_id. Every other member fails the `duplicate` check; its
-`dup_of` names the keeper, `dup_signal` the strongest signal linking it to the keeper
+Only live samples are grouped (a sample another check already dropped never takes a group's
+place). The keeper of a group follows `keeper`, a priority list (default: no risk or quality flags,
+more pixels, a lossless file or a higher JPEG quality, sharper, less area under overlays or bands,
+then the smallest sample_id). Every other member fails the `duplicate` check; its `keep_reason`
+names the criterion on which the kept copy won, its `dup_of` names the keeper, `dup_signal` the strongest signal linking it to the keeper
 ("sha256" < "phash"/"dhash" < "embedding") and `dup_distance` its distance to the keeper in that
 signal's unit: Hamming bits of the closest views for sha256 (0) and hash codes, 1 - cosine for
 embeddings. `group_id` is the keeper's sample_id (a lone sample is its own group), so it is stable
@@ -19,21 +21,21 @@ from __future__ import annotations
 
 import logging
 import os
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
 from .. import hashing
-from ..policy import verdict
+from ..checks import CHECKS_TYPE, check
 from . import hashes as hashes_mod
-from .base import CHECKS_TYPE, CheckSpec, Stage, StageContext, all_checks, check, checks_column, register
+from .base import CheckSpec, Column, StageContext, checks_column, stage
 
 log = logging.getLogger(__name__)
 
 NAME = "neardup"
-VERSION = "1"
+VERSION = "2"
 
 
 @dataclass
@@ -58,6 +60,11 @@ class NeardupConfig:
     probes: int = 2
     # Seed of the k-means initialisation (same input and seed, same groups).
     seed: int = 0
+    # Which copy of a group is kept, criteria in order (ties go to the next): unflagged (no risk or
+    # quality flag), pixels (more), fidelity (a lossless file, else the higher JPEG quality), sharpness
+    # (higher), clean (less area under overlays and bands), agreement (higher caption agreement);
+    # the smallest sample_id breaks remaining ties. Common practice: train on the best copy.
+    keeper: list[str] = field(default_factory=lambda: ["unflagged", "pixels", "fidelity", "sharpness", "clean"])
 
     def validate(self) -> None:
         if not 0 <= self.radius <= 32:
@@ -66,23 +73,72 @@ class NeardupConfig:
             raise ValueError(f"cosine must be within (0, 1], got {self.cosine}")
         if self.clusters < 0 or self.probes < 1 or self.cosine_exact_max < 0:
             raise ValueError("clusters must be >= 0, probes >= 1, cosine_exact_max >= 0")
+        bad = [k for k in self.keeper if k not in KEEPER_CRITERIA]
+        if bad or len(set(self.keeper)) != len(self.keeper):
+            raise ValueError(f"keeper lists each of {', '.join(KEEPER_CRITERIA)} at most once; got {self.keeper}")
 
 
 CHECKS = (
     CheckSpec("duplicate", "drop", "a copy (same bytes, near-identical picture or embedding) of the group's kept sample"),
 )
 
-OUTPUT_SCHEMA = pa.schema(
-    [
-        ("sample_id", pa.string()),
-        ("group_id", pa.string()),
-        ("group_size", pa.int32()),
-        ("dup_of", pa.string()),
-        ("dup_signal", pa.string()),
-        ("dup_distance", pa.float32()),
-        (checks_column(NAME), CHECKS_TYPE),
-    ]
+LOSSLESS = ("PNG", "BMP", "TIFF", "GIF")
+
+
+def _col(table: pa.Table, name: str, rows: np.ndarray, fill: float) -> np.ndarray:
+    if name not in table.column_names:
+        return np.full(len(rows), fill, np.float64)
+    a = table.column(name).to_numpy(zero_copy_only=False)[rows].astype(np.float64)
+    return np.where(np.isnan(a), fill, a)
+
+
+def _fidelity(table: pa.Table, rows: np.ndarray) -> np.ndarray:
+    """101 for a lossless file, the estimated JPEG quality (1-100) for a JPEG, 0 when unknown."""
+    q = _col(table, "jpeg_quality", rows, 0.0)
+    if "format" in table.column_names:
+        fmt = table.column("format").to_pylist()
+        q = np.where(np.array([fmt[i] in LOSSLESS for i in rows], dtype=bool), 101.0, q)
+    return q
+
+
+# name -> (what it prefers, score of each row: lower wins)
+KEEPER_CRITERIA = {
+    "unflagged": ("no risk or quality flag", lambda t, r: np.asarray(
+        [bool(f) for f in t.column("flags_before").to_pylist()], np.float64)[r]
+        if "flags_before" in t.column_names else np.zeros(len(r))),
+    "pixels": ("more pixels", lambda t, r: -(_col(t, "width", r, 0.0) * _col(t, "height", r, 0.0))),
+    "fidelity": ("a lossless file or a higher JPEG quality", lambda t, r: -_fidelity(t, r)),
+    "sharpness": ("sharper", lambda t, r: -_col(t, "sharpness", r, -np.inf)),
+    "clean": ("less area under overlays and bands", lambda t, r: _col(t, "overlay_share", r, 0.0)
+              + _col(t, "border_share", r, 0.0)),
+    "agreement": ("a caption that agrees better", lambda t, r: -_col(t, "agreement", r, -np.inf)),
+}
+
+
+def keeper_scores(table: pa.Table, rows: np.ndarray, order: list[str]) -> np.ndarray:
+    """(len(order), len(rows)) scores, lower is better, rounded so measurement noise does not decide."""
+    return np.stack([np.round(KEEPER_CRITERIA[k][1](table, rows), 6) for k in order]) if order else \
+        np.zeros((0, len(rows)))
+
+
+def why_kept(scores: np.ndarray, order: list[str], keeper: int, member: int) -> str:
+    """The first criterion on which the kept copy beats a member (sample_id when all tie)."""
+    for k, name in enumerate(order):
+        if scores[k, keeper] < scores[k, member]:
+            return name
+    return "sample_id"
+
+
+COLUMNS = (
+    Column("group_id", pa.string(), "near-duplicate group: the kept sample's id", shard=True),
+    Column("group_size", pa.int32(), "members of the group"),
+    Column("dup_of", pa.string(), "the kept sample this one is a copy of"),
+    Column("dup_signal", pa.string(), "what linked it: sha256, the hash kind, or embedding"),
+    Column("dup_distance", pa.float32(), "distance to the kept sample in that signal's unit"),
+    Column("keep_reason", pa.string(), "for a copy: the criterion on which the kept copy won"),
 )
+OUTPUT_SCHEMA = pa.schema([("sample_id", pa.string())] + [(c.name, c.type) for c in COLUMNS]
+                          + [(checks_column(NAME), CHECKS_TYPE)])
 
 
 def _embeddings(table: pa.Table, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -105,23 +161,6 @@ def _embeddings(table: pa.Table, rows: np.ndarray) -> tuple[np.ndarray, np.ndarr
                 emb[i] = v
     emb[~has] = 0
     return emb, has
-
-
-def _dropped_elsewhere(table: pa.Table, rows: np.ndarray, ctx: StageContext) -> np.ndarray:
-    """Whether another stage's checks already drop each of the given rows."""
-    cols = [c for c in table.column_names if c.endswith(".checks") and c != checks_column(NAME)]
-    out = np.zeros(len(rows), dtype=bool)
-    if not cols or not len(rows):
-        return out
-    specs = all_checks()
-    decide = getattr(ctx.config, "decide", None) if ctx.config is not None else None
-    overrides = dict(getattr(decide, "actions", {}) or {})
-    idx = pa.array(rows, type=pa.int64())
-    lists = [table.column(c).take(idx).to_pylist() for c in cols]
-    for k in range(len(rows)):
-        reasons, _ = verdict((lst[k] for lst in lists), specs, overrides, skip_codes=frozenset({"duplicate"}))
-        out[k] = bool(reasons)
-    return out
 
 
 def _keepers(labels: np.ndarray, rank: np.ndarray) -> np.ndarray:
@@ -189,19 +228,24 @@ def _sha_keys(table: pa.Table, rows: np.ndarray) -> np.ndarray:
     return np.asarray(enc.fill_null(-1).to_numpy(zero_copy_only=False), dtype=np.int64)
 
 
+@stage(name=NAME, version=VERSION, config=NeardupConfig, kind="global", phase="group", alive_only=True,
+       needs=("decoded", "width", "height"), wants=("sha256", hashes_mod.CODES, "image_emb", "agreement",
+                                                    "flags_before", "format", "jpeg_quality", "sharpness",
+                                                    "border_share", "overlay_share"),
+       sections=("hashes",), provides=COLUMNS, checks=CHECKS, after=("decontaminate",), parallel="inline")
 def run(table: pa.Table, cfg: NeardupConfig, ctx: StageContext) -> pa.Table:
+    """Group copies of one picture and keep the best copy of each group."""
     n = table.num_rows
     sample_id = table.column("sample_id").to_pylist()
     decoded = np.asarray(table.column("decoded").fill_null(False).to_numpy(zero_copy_only=False), dtype=bool)
     rows = np.flatnonzero(decoded)
     m = rows.shape[0]
 
-    hcfg = getattr(ctx.config, "hashes", None) if ctx.config is not None else None
+    hcfg = ctx.config.section("hashes")
     codes = has_codes = None
-    signal_name = "phash"
-    if hcfg is not None and getattr(hcfg, "enabled", False) and hashes_mod.codes_column(hcfg) in table.column_names:
-        signal_name = hashes_mod.codes_column(hcfg)
-        all_codes, all_has = hashes_mod.codes_matrix(table.column(signal_name), hashes_mod.variants(hcfg))
+    signal_name = hcfg.kind
+    if hashes_mod.CODES in table.column_names:
+        all_codes, all_has = hashes_mod.codes_matrix(table.column(hashes_mod.CODES), hashes_mod.variants(hcfg))
         codes, has_codes = all_codes[rows], all_has[rows]
     emb = has_emb = None
     if cfg.semantic and "image_emb" in table.column_names and m:
@@ -214,24 +258,15 @@ def run(table: pa.Table, cfg: NeardupConfig, ctx: StageContext) -> pa.Table:
         threads=threads,
     )
 
-    # Keeper rule. Only samples in groups of two or more need the (slower) verdict lookup.
     sizes = np.bincount(lab_all, minlength=m) if m else np.zeros(0, np.int64)
-    in_group = np.flatnonzero(sizes[lab_all] > 1) if m else np.zeros(0, np.int64)
-    dropped = np.zeros(m, dtype=bool)
-    dropped[in_group] = _dropped_elsewhere(table, rows[in_group], ctx)
-    width = table.column("width").fill_null(0).to_numpy(zero_copy_only=False)[rows].astype(np.int64)
-    height = table.column("height").fill_null(0).to_numpy(zero_copy_only=False)[rows].astype(np.int64)
-    agree = np.full(m, -np.inf)
-    if "agreement" in table.column_names:
-        a = table.column("agreement").to_numpy(zero_copy_only=False)[rows].astype(np.float64)
-        agree = np.where(np.isnan(a), -np.inf, a)
     ids = [sample_id[i] for i in rows]
-    # Rank: not dropped elsewhere, most pixels, highest agreement, smallest sample_id.
+    # Rank by the keeper priority, the smallest sample_id last.
     id_rank = np.empty(m, np.int64)
     if m:
         by_id = pc.sort_indices(table.column("sample_id").take(pa.array(rows, type=pa.int64())))
         id_rank[by_id.to_numpy()] = np.arange(m)
-    rank_order = np.lexsort((id_rank, -agree, -(width * height), dropped))
+    scores = keeper_scores(table, rows, cfg.keeper)
+    rank_order = np.lexsort((id_rank, *scores[::-1]))
     rank = np.empty(m, np.int64)
     rank[rank_order] = np.arange(m)
     keeper = _keepers(lab_all, rank) if m else np.zeros(0, np.int64)
@@ -241,6 +276,7 @@ def run(table: pa.Table, cfg: NeardupConfig, ctx: StageContext) -> pa.Table:
     dup_of: list[str | None] = [None] * n
     dup_signal: list[str | None] = [None] * n
     dup_distance: list[float | None] = [None] * n
+    keep_reason: list[str | None] = [None] * n
     checks: list[list[dict]] = [[] for _ in range(n)]
     others = np.flatnonzero(keeper != np.arange(m))
     dist_hash = np.zeros(m, np.float64)
@@ -252,7 +288,6 @@ def run(table: pa.Table, cfg: NeardupConfig, ctx: StageContext) -> pa.Table:
     dist_emb = np.zeros(m, np.float64)
     if emb is not None and emb.shape[1] and others.shape[0]:
         dist_emb[others] = 1.0 - np.einsum("ij,ij->i", emb[others], emb[keeper[others]])
-    thresholds = {"sha256": "same sha256", signal_name: f"<={cfg.radius} bits", "embedding": f">={cfg.cosine:g} cosine"}
     for k in range(m):
         i = rows[k]
         kk = keeper[k]
@@ -260,18 +295,24 @@ def run(table: pa.Table, cfg: NeardupConfig, ctx: StageContext) -> pa.Table:
         group_id[i] = gid
         group_size[i] = int(sizes[lab_all[k]])
         if kk == k:
-            value = "no copy" if group_size[i] == 1 else f"kept over {group_size[i] - 1} copies"
-            checks[i] = [check("duplicate", value, f"<={cfg.radius} bits", False)]
+            detail = "no copy" if group_size[i] == 1 else f"kept over {group_size[i] - 1} copies"
+            checks[i] = [check("duplicate", failed=False, detail=detail)]
             continue
         if lab_sha[k] == lab_sha[kk]:
             sig, dist = "sha256", 0.0
+            rec = check("duplicate", failed=True, detail=f"same bytes as {gid}")
         elif lab_hash[k] == lab_hash[kk]:
             sig, dist = signal_name, float(dist_hash[k])
+            rec = check("duplicate", failed=True, value=dist, threshold=cfg.radius, op=">", unit="bits",
+                        detail=f"copy of {gid} ({sig})")
         else:
             sig, dist = "embedding", float(max(dist_emb[k], 0.0))
+            rec = check("duplicate", failed=True, value=1.0 - dist, threshold=cfg.cosine, op="<", unit="cosine",
+                        detail=f"copy of {gid} (embedding)")
         dup_of[i], dup_signal[i], dup_distance[i] = gid, sig, dist
-        shown = f"{dist:.4g}" if sig == "embedding" else f"{int(dist)}" if dist == dist else "?"
-        checks[i] = [check("duplicate", f"copy of {gid} ({sig}, distance {shown})", thresholds[sig], True)]
+        keep_reason[i] = why_kept(scores, cfg.keeper, kk, k)
+        rec["detail"] = f"{rec['detail']}; the kept copy wins on {keep_reason[i]}"
+        checks[i] = [rec]
     return pa.Table.from_arrays(
         [
             table.column("sample_id"),
@@ -280,22 +321,8 @@ def run(table: pa.Table, cfg: NeardupConfig, ctx: StageContext) -> pa.Table:
             pa.array(dup_of, pa.string()),
             pa.array(dup_signal, pa.string()),
             pa.array(dup_distance, pa.float32()),
+            pa.array(keep_reason, pa.string()),
             pa.array(checks, CHECKS_TYPE),
         ],
         schema=OUTPUT_SCHEMA,
     )
-
-
-register(
-    Stage(
-        name=NAME,
-        version=VERSION,
-        config_cls=NeardupConfig,
-        fn=run,
-        kind="global",
-        inputs=("inspect", "caption", "caption_repeats", "embed", "agreement"),
-        reads_sections=("hashes", "decide"),
-        checks=CHECKS,
-        parallel="inline",
-    )
-)

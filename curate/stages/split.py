@@ -1,13 +1,13 @@
 """split: hold out an eval set with no near-duplicate leaks, and drop training candidates that
 near-duplicate an outside evaluation set.
 
-Two jobs, in this order:
-1. Decontamination: every decoded sample whose perceptual codes come within `radius` bits of an
+Two stages share the `[split]` section, both on live samples only:
+1. `decontaminate` (before near-duplicate grouping): every sample whose perceptual codes come within `radius` bits of an
    image of a `split.eval_sets` entry (a benchmark folder, manifest, tar or shard set) fails the
    `eval_overlap` check (a drop by default); `eval_match` names the outside image. Outside codes
    are cached under the work dir (curate.imagesets). Barz & Denzler 2020 (J. Imaging 6(6):41)
    found near-duplicates of 3.3% of CIFAR-10 and 10% of CIFAR-100 test images in training.
-2. The split: samples are grouped (near-duplicate groups from `neardup`, or this stage's own
+2. `split`, last: samples are grouped (near-duplicate groups from `neardup`, or this stage's own
    Hamming components when neardup is off, plus semantic groups when embeddings exist), and a
    whole group goes to eval when u(seed, key) < eval_fraction, where u is a uniform number from
    sha256 of the seed and the group's key (its smallest sample_id). A group never straddles, and
@@ -19,8 +19,8 @@ from __future__ import annotations
 
 import hashlib
 import json
-import math
 import logging
+import math
 import os
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -29,12 +29,13 @@ from typing import Any, Sequence
 import numpy as np
 import pyarrow as pa
 
-from .base import CHECKS_TYPE, CheckSpec, Stage, StageContext, all_checks, check, checks_column, register
+from ..checks import CHECKS_TYPE, check
+from .base import CheckSpec, Column, StageContext, checks_column, stage
 
 log = logging.getLogger(__name__)
 
 NAME = "split"
-VERSION = "1"
+VERSION = "2"
 
 
 @dataclass
@@ -231,7 +232,7 @@ def _strata(table: pa.Table, key: str) -> list[str]:
 def resolve_eval_sets(cfg: SplitConfig, config: Any) -> list[str]:
     """Absolute paths of `eval_sets`; relative ones are relative to the pipeline file."""
     base = Path(config.origin).parent if getattr(config, "origin", None) else Path.cwd()
-    return [str((base / os.path.expanduser(p)).resolve()) for p in cfg.eval_sets]
+    return [p if "://" in p else str((base / os.path.expanduser(p)).resolve()) for p in cfg.eval_sets]
 
 
 def effective_radius(cfg: SplitConfig, config: Any) -> int:
@@ -277,17 +278,21 @@ def _decontaminate(table: pa.Table, has_codes: np.ndarray, codes: np.ndarray | N
                     best[i] = cand
         if semantic and emb is not None:
             _semantic_matches(images, emb, has_emb, cfg, ctx, cache, best)
-    limit = f">{radius} bits" + (f", cosine <{cfg.eval_semantic_cosine:g}" if semantic else "")
     for i in range(n):
         if not has_codes[i] and best[i] is None:
             continue
         if best[i] is None:
-            checks[i].append(check("eval_overlap", "no match", limit, False))
+            checks[i].append(check("eval_overlap", failed=False, threshold=radius, op=">", unit="bits",
+                                   detail="no outside image within reach"))
         else:
             d, ref = best[i]
             match[i] = ref
-            what = f"cosine {-d:.4g}" if d < 0 else f"{int(d)} bits"
-            checks[i].append(check("eval_overlap", f"{what} from {ref}", limit, True))
+            if d < 0:
+                checks[i].append(check("eval_overlap", value=-d, threshold=cfg.eval_semantic_cosine, op="<",
+                                       unit="cosine", detail=f"matches {ref}"))
+            else:
+                checks[i].append(check("eval_overlap", value=d, threshold=radius, op=">", unit="bits",
+                                       detail=f"matches {ref}"))
     return match, checks
 
 
@@ -310,83 +315,72 @@ def _semantic_matches(images: Any, emb: np.ndarray, has_emb: np.ndarray, cfg: Sp
                 best[i] = cand
 
 
-# --------------------------------------------------------------------------- the stage
+# --------------------------------------------------------------------------- the stages
 
 
 def _codes(table: pa.Table, ctx: StageContext) -> tuple[np.ndarray | None, np.ndarray]:
-    """(n, K) perceptual codes from the hash columns inspect wrote, and which rows have them."""
-    hcfg = getattr(ctx.config, "hashes", None)
-    if hcfg is None or not getattr(hcfg, "enabled", False):
+    """(n, K) perceptual codes from the hashes stage, and which rows have them."""
+    from . import hashes as hmod
+
+    if hmod.CODES not in table.column_names:
         return None, np.zeros(table.num_rows, dtype=bool)
-    from .. import imagesets
-
-    return imagesets.codes_matrix(table, hcfg)
+    return hmod.codes_matrix(table.column(hmod.CODES), hmod.variants(ctx.config.section("hashes")))
 
 
-def _pre_verdict(table: pa.Table, ctx: StageContext) -> np.ndarray:
-    """True for samples no earlier check drops (and that decoded)."""
-    from ..policy import verdict
-
-    n = table.num_rows
-    specs = all_checks()
-    overrides = getattr(getattr(ctx.config, "decide", None), "actions", {}) or {}
-    cols = [table.column(c).to_pylist() for c in table.column_names if c.endswith(".checks")]
-    decoded = table.column("decoded").to_pylist() if "decoded" in table.column_names else [True] * n
-    alive = np.zeros(n, dtype=bool)
-    for i in range(n):
-        reasons, _flags = verdict([c[i] for c in cols], specs, overrides)
-        alive[i] = bool(decoded[i]) and not reasons
-    return alive
+def _has_eval_sets(view: Any) -> bool:
+    return bool(view.section(NAME).eval_sets)
 
 
+@stage(name="decontaminate", section=NAME, version=VERSION, config=SplitConfig, kind="global", phase="group",
+       alive_only=True, needs=("hash_codes",), wants=("image_emb",), sections=("neardup", "hashes", "inspect", "embed"),
+       provides=(Column("eval_match", pa.string(), "the outside evaluation image this sample near-duplicates"),),
+       checks=CHECKS, active_if=_has_eval_sets, parallel="inline", identity=lambda view: _identity(view))
+def run_decontaminate(table: pa.Table, cfg: SplitConfig, ctx: StageContext) -> pa.Table:
+    """Drop training candidates that near-duplicate an image of an outside evaluation set."""
+    codes, has_codes = _codes(table, ctx)
+    match, checks = _decontaminate(table, has_codes, codes, cfg, ctx)
+    if ctx.progress is not None:
+        ctx.progress.advance(table.num_rows)
+    return pa.Table.from_arrays([table.column("sample_id"), pa.array(match, pa.string()),
+                                 pa.array(checks, type=CHECKS_TYPE)],
+                                names=["sample_id", "eval_match", checks_column("decontaminate")])
+
+
+@stage(name=NAME, version=VERSION, config=SplitConfig, kind="global", phase="assign", alive_only=True,
+       needs=(), wants=("group_id", "hash_codes", "image_emb", "meta"), sections=("neardup", "hashes"),
+       provides=(Column("split", pa.string(), "train, eval or quarantine; null for dropped samples", shard=True),),
+       parallel="inline")
 def run(table: pa.Table, cfg: SplitConfig, ctx: StageContext) -> pa.Table:
-    from ..policy import action_for
-
+    """Assign whole near-duplicate groups of live samples to train or eval."""
     n = table.num_rows
     ids = table.column("sample_id").to_pylist()
-    alive = _pre_verdict(table, ctx)
-    decoded = np.array(table.column("decoded").to_pylist() if "decoded" in table.column_names else [True] * n,
-                       dtype=bool)
     codes, has_codes = _codes(table, ctx)
-    if cfg.eval_sets and codes is None:
-        log.warning("split: split.eval_sets given but [hashes] is off: no decontamination possible")
-    match, checks = _decontaminate(table, has_codes, codes, cfg, ctx)
-    overrides = getattr(getattr(ctx.config, "decide", None), "actions", {}) or {}
-    if action_for("eval_overlap", all_checks(), overrides) == "drop":
-        alive &= np.array([m is None for m in match], dtype=bool)
-
-    split: list[str | None] = [None] * n
-    if cfg.eval_fraction > 0:
-        members = decoded.copy()
+    split: list[str | None] = ["train"] * n
+    if cfg.eval_fraction > 0 and n:
+        members = np.ones(n, dtype=bool)
         labels = _labels(table, members, codes, has_codes, effective_radius(cfg, ctx.config), cfg)
         keys = group_keys(ids, labels, members)
-        gkeys = sorted({k for k in keys if k is not None})
+        gkeys = sorted(set(keys))
         gindex = {k: g for g, k in enumerate(gkeys)}
         weight = np.zeros(len(gkeys), dtype=np.int64)
-        for k, a in zip(keys, alive.tolist()):
-            if k is not None and a:
-                weight[gindex[k]] += 1
+        for k in keys:
+            weight[gindex[k]] += 1
         strata = None
         if cfg.stratify:
             row_strata = _strata(table, cfg.stratify)
-            # A group's stratum: that of its smallest kept sample_id (its key's row when kept).
+            # A group's stratum: that of its smallest sample_id (its key's row).
             first: dict[str, tuple[str, str]] = {}
-            for sid, k, a, s in zip(ids, keys, alive.tolist(), row_strata):
-                if k is not None and a and (k not in first or sid < first[k][0]):
-                    first[k] = (sid, s)
-            strata = [first.get(k, ("", ""))[1] for k in gkeys]
+            for sid, k, st in zip(ids, keys, row_strata):
+                if k not in first or sid < first[k][0]:
+                    first[k] = (sid, st)
+            strata = [first[k][1] for k in gkeys]
         is_eval = assign_groups(gkeys, weight, cfg.eval_fraction, cfg.seed, cfg.share_tolerance, strata)
-        split = [("eval" if is_eval[gindex[k]] else "train") if (a and k is not None) else None
-                 for k, a in zip(keys, alive.tolist())]
-    else:
-        split = ["train" if a else None for a in alive.tolist()]
+        split = ["eval" if is_eval[gindex[k]] else "train" for k in keys]
     if ctx.progress is not None:
         ctx.progress.advance(n)
-    return pa.Table.from_arrays(
-        [table.column("sample_id"), pa.array(split, pa.string()), pa.array(match, pa.string()),
-         pa.array(checks, type=CHECKS_TYPE)],
-        names=["sample_id", "split", "eval_match", checks_column(NAME)],
-    )
+    return pa.Table.from_arrays([table.column("sample_id"), pa.array(split, pa.string()),
+                                 pa.array([[]] * n, type=CHECKS_TYPE)],
+                                names=["sample_id", "split", checks_column(NAME)])
 
 
 def _identity(config: Any) -> dict:
@@ -408,19 +402,3 @@ def _identity(config: Any) -> dict:
                               key="split.eval_sets") from e
         out[p] = fingerprint(s.refs, s.stamps)
     return {"eval_sets": out}
-
-
-register(
-    Stage(
-        name=NAME,
-        version=VERSION,
-        config_cls=SplitConfig,
-        fn=run,
-        kind="global",
-        inputs=("inspect", "caption", "caption_repeats", "embed", "agreement", "neardup", "risk"),
-        reads_sections=("hashes", "neardup", "decide", "inspect", "embed"),
-        checks=CHECKS,
-        parallel="inline",
-        identity=_identity,
-    )
-)

@@ -1,0 +1,146 @@
+"""Scale: a synthetic run of N samples through the corpus-wide stages and the verdict.
+
+No images: the per-shard work (decoding, hashing, CLIP) scales with the number of images and the
+machines given to it; what must hold on one machine is the corpus-wide part. This builds the
+compact columns those stages read for N samples (caption keys with repeats, sha256, perceptual
+codes with planted near-copies, sizes, image quality, the true and shuffled agreement cosines) and
+runs, in one process per N: caption_repeats, agreement, neardup (perceptual codes and bytes; the
+semantic search over embeddings is measured in bench/cosine_search.py), split, and the verdict
+over every check. It prints seconds and peak RSS per step, and extrapolates to 100M and 1B.
+
+    .venv/bin/python bench/scale_plan.py --rows 1000000 --json
+    .venv/bin/python bench/scale_plan.py                      # 100k and 1M, then the extrapolation
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import resource
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def _rss_mb() -> float:
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0  # Linux: kilobytes
+
+
+def synth(n: int, seed: int = 0) -> pa.Table:
+    """The compact columns of n samples: ids, caption keys (2% on a template caption), sha256 (1%
+    exact copies), 7 perceptual codes per sample (5% near copies within 4 bits), sizes, quality,
+    true and shuffled agreement cosines."""
+    rng = np.random.default_rng(seed)
+    ids = np.char.mod("%016x", rng.integers(0, 2**62, n, dtype=np.int64)).astype(object)
+    keys = np.char.mod("a glazed pot number %d on a table", rng.integers(0, n, n)).astype(object)
+    keys[rng.random(n) < 0.02] = "product image"
+    sha = np.char.mod("%064x", rng.integers(0, 2**62, n, dtype=np.int64)).astype(object)
+    dup = rng.random(n) < 0.01
+    sha[dup] = sha[rng.integers(0, n, int(dup.sum()))]
+    base = rng.integers(0, 2**63, (n, 1), dtype=np.int64).astype(np.uint64) * np.uint64(2) + np.uint64(1)
+    codes = np.repeat(base, 7, axis=1) ^ rng.integers(0, 2**10, (n, 7), dtype=np.int64).astype(np.uint64)
+    near = np.flatnonzero(rng.random(n) < 0.05)
+    src = rng.integers(0, n, len(near))
+    flips = np.zeros(len(near), np.uint64)
+    for _ in range(4):
+        flips |= np.uint64(1) << rng.integers(0, 64, len(near)).astype(np.uint64)
+    codes[near] = codes[src] ^ flips[:, None]
+    k = 7
+    code_col = pa.FixedSizeListArray.from_arrays(pa.array(codes.reshape(-1), pa.uint64()), k)
+    agree = np.clip(rng.normal(0.31, 0.06, n), -1, 1).astype(np.float32)
+    shuffled = np.clip(rng.normal(0.12, 0.05, n), -1, 1).astype(np.float32)
+    return pa.table({
+        "sample_id": pa.array(ids, pa.string()), "source": pa.array(ids, pa.string()),
+        "caption_key": pa.array(keys, pa.string()), "sha256": pa.array(sha, pa.string()),
+        "hash_codes": code_col, "decoded": pa.array(np.ones(n, bool)),
+        "width": pa.array(rng.integers(256, 2048, n).astype(np.int32)),
+        "height": pa.array(rng.integers(256, 2048, n).astype(np.int32)),
+        "format": pa.array(["JPEG"] * n, pa.string()),
+        "jpeg_quality": pa.array(rng.uniform(60, 98, n).astype(np.float32)),
+        "sharpness": pa.array(rng.uniform(0.2, 1.2, n).astype(np.float32)),
+        "border_share": pa.array(np.zeros(n, np.float32)), "overlay_share": pa.array(np.zeros(n, np.float32)),
+        "agreement": pa.array(agree), "shuffled_agreement": pa.array(shuffled),
+    })
+
+
+def one(n: int) -> dict:
+    """Run the corpus-wide steps on n synthetic samples in this process."""
+    sys.path.insert(0, str(ROOT))
+    from curate import decide
+    from curate.config import load_config
+    from curate.execute import call_stage
+    from curate.layout import hstack
+    from curate.plan import config_sections
+    from curate.stages import REGISTRY, all_checks
+
+    cfg = load_config(None, ["agreement.threshold=0.28", "split.eval_fraction=0.05", "neardup.semantic=false"],
+                      config_sections())
+    actions = decide.Actions(all_checks(), {})
+    steps: dict[str, dict] = {}
+    t = time.perf_counter()
+    table = synth(n)
+    steps["synthesise"] = {"seconds": round(time.perf_counter() - t, 2), "peak_rss_mb": round(_rss_mb())}
+    checks = []
+    for name in ("caption_repeats", "agreement", "neardup", "split"):
+        t = time.perf_counter()
+        rows = None
+        if REGISTRY[name].alive_only:
+            rows = np.flatnonzero(decide.alive(checks, actions, n)).tolist()
+        flags = [[] for _ in rows] if rows is not None and name == "neardup" else None
+        out = call_stage(name, table, cfg, rows, flags, workers=2)
+        table = hstack([table, out], name)
+        checks.append(table.column(f"{name}.checks"))
+        steps[name] = {"seconds": round(time.perf_counter() - t, 2), "peak_rss_mb": round(_rss_mb())}
+    t = time.perf_counter()
+    stage_checks = [(s, table.column(f"{s}.checks").to_pylist()) for s in ("caption_repeats", "agreement",
+                                                                           "neardup", "split")]
+    decide.verdict(stage_checks, {}, {}, actions, n)
+    steps["verdict"] = {"seconds": round(time.perf_counter() - t, 2), "peak_rss_mb": round(_rss_mb())}
+    kept = int(decide.alive(checks, actions, n).sum())
+    total = round(sum(s["seconds"] for k, s in steps.items() if k != "synthesise"), 2)
+    return {"rows": n, "steps": steps, "seconds": total, "peak_rss_mb": round(_rss_mb()), "kept": kept}
+
+
+def main() -> int:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    ap.add_argument("--rows", type=int, action="append", help="rows to run (repeatable); default 100k and 1M")
+    ap.add_argument("--json", action="store_true", help="print one JSON line")
+    ap.add_argument("--child", type=int, help=argparse.SUPPRESS)
+    a = ap.parse_args()
+    if a.child:
+        print(json.dumps(one(a.child)))
+        return 0
+    results = []
+    for n in a.rows or [100_000, 1_000_000]:
+        r = subprocess.run([sys.executable, __file__, "--child", str(n)], capture_output=True, text=True)
+        if r.returncode != 0:
+            print(r.stderr[-2000:], file=sys.stderr)
+            return r.returncode
+        results.append(json.loads(r.stdout.strip().splitlines()[-1]))
+    big = max(results, key=lambda r: r["rows"])
+    per_row_s = big["seconds"] / big["rows"]
+    per_row_mb = big["peak_rss_mb"] / big["rows"]
+    extra = {f"{label}_estimate": {"seconds": round(per_row_s * rows), "peak_rss_gb": round(per_row_mb * rows / 1024, 1)}
+             for label, rows in (("100M", 100_000_000), ("1B", 1_000_000_000))}
+    assumes = ("linear in rows from the largest measured run: every step here is a sort, a hash join or an "
+               "exact Hamming search whose candidate pairs grow with the planted copies; the verdict is a "
+               "per-row Python loop; memory is the compact columns held at once (about peak/rows bytes each)")
+    out = {"runs": results, **extra, "assumes": assumes}
+    if a.json:
+        print(json.dumps(out))
+    else:
+        for r in results:
+            print(f"{r['rows']:>12,} rows: {r['seconds']:8.2f} s, peak RSS {r['peak_rss_mb']:,} MB  "
+                  + "  ".join(f"{k} {v['seconds']}s" for k, v in r["steps"].items()))
+        for k, v in extra.items():
+            print(f"{k}: about {v['seconds']:,} s and {v['peak_rss_gb']} GB on one machine ({assumes})")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

@@ -1,0 +1,277 @@
+"""The verdict, computed in one place: which failed checks drop a sample, flag it, quarantine it.
+
+Every registered stage declares its reason codes with a default action; the
+`[decide] actions` table overrides them, by exact code (`"pii:email"`) or by
+family (`pii`). The runner asks this module which samples are still alive
+before each stage that sees only live samples, and the ledger asks it for
+each sample's reasons and flags. Nothing else decides.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Callable, Iterable, Sequence
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from .checks import ACTIONS, family
+from .errors import ConfigError
+from .stages.base import CheckSpec, spec_for
+
+# Actions under which a failed check keeps the sample but marks it.
+MARKING = ("flag", "quarantine", "redact")
+# A reviewer's keep: it lifts every drop whose code may be kept (not the ones that make an image unusable).
+OVERRIDE = "review_keep"
+
+
+class Actions:
+    """Each reason code's action: an override by exact code, else by family, else the default."""
+
+    def __init__(self, specs: dict[str, CheckSpec], overrides: dict[str, str] | None = None):
+        self.specs = specs
+        self.overrides = dict(overrides or {})
+        for key, act in self.overrides.items():
+            spec = spec_for(key, specs)
+            if spec is None:
+                import difflib
+
+                near = difflib.get_close_matches(key, list(specs), n=1)
+                hint = f"did you mean {near[0]!r}? " if near else ""
+                raise ConfigError(f"unknown reason code {key!r}; {hint}known codes: {', '.join(sorted(specs))}",
+                                  key=f"decide.actions.{key}")
+            if act not in spec.allowed:
+                raise ConfigError(f"action {act!r} is not one of {', '.join(spec.allowed)} for {key}",
+                                  key=f"decide.actions.{key}")
+        self._cache: dict[str, str] = {}
+
+    def action(self, code: str) -> str:
+        act = self._cache.get(code)
+        if act is None:
+            act = self.overrides.get(code) or self.overrides.get(family(code))
+            if act is None:
+                spec = spec_for(code, self.specs)
+                act = spec.action if spec is not None else "drop"
+            self._cache[code] = act
+        return act
+
+    def codes_with(self, codes: Iterable[str], action: str) -> list[str]:
+        return [c for c in codes if c is not None and self.action(c) == action]
+
+    def reason(self, code: str) -> str:
+        """The reason a dropping code records: `risk:<code>` for screening flags, the code otherwise."""
+        spec = spec_for(code, self.specs)
+        return f"risk:{code}" if spec is not None and spec.risk else code
+
+    def overridable(self, code: str) -> bool:
+        """Whether a reviewer's keep lifts a drop by this code."""
+        spec = spec_for(code, self.specs)
+        return spec is not None and "keep" in spec.allowed
+
+
+def _failed_rows(checks: pa.ChunkedArray | pa.Array, actions: Actions, action: str,
+                 which: Callable[[str], bool] | None = None) -> np.ndarray:
+    """Row indices with at least one failed check whose action is `action` (and whose code `which` accepts)."""
+    arr = checks.combine_chunks() if isinstance(checks, pa.ChunkedArray) else checks
+    if len(arr) == 0:
+        return np.zeros(0, np.int64)
+    flat = pc.list_flatten(arr)
+    if len(flat) == 0:
+        return np.zeros(0, np.int64)
+    parents = pc.list_parent_indices(arr)
+    codes = flat.field("code")
+    wanted = [c for c in actions.codes_with(pc.unique(codes).to_pylist(), action) if which is None or which(c)]
+    if not wanted:
+        return np.zeros(0, np.int64)
+    hit = pc.and_(pc.fill_null(flat.field("failed"), False), pc.is_in(codes, value_set=pa.array(wanted)))
+    return np.unique(np.asarray(parents.filter(hit).to_numpy(zero_copy_only=False), dtype=np.int64))
+
+
+def rows_with(check_columns: Sequence[pa.ChunkedArray | pa.Array], actions: Actions, action: str,
+              n: int, which: Callable[[str], bool] | None = None) -> np.ndarray:
+    """Boolean mask: rows with a failed check of the given action in any of the columns."""
+    mask = np.zeros(n, dtype=bool)
+    for col in check_columns:
+        mask[_failed_rows(col, actions, action, which)] = True
+    return mask
+
+
+def alive(check_columns: Sequence[pa.ChunkedArray | pa.Array], actions: Actions, n: int) -> np.ndarray:
+    """True for samples that no failed check drops (a reviewer's keep lifts the drops it may lift)."""
+    kept = rows_with(check_columns, actions, "keep", n, lambda c: c == OVERRIDE)
+    hard = rows_with(check_columns, actions, "drop", n, lambda c: not actions.overridable(c))
+    soft = rows_with(check_columns, actions, "drop", n, actions.overridable)
+    return ~(hard | (soft & ~kept))
+
+
+def flags_so_far(check_columns: Sequence[pa.ChunkedArray | pa.Array], actions: Actions, n: int) -> list[list[str]]:
+    """Per row: the codes of failed checks whose action marks the sample, in column order."""
+    out: list[list[str]] = [[] for _ in range(n)]
+    for col in check_columns:
+        for i in np.flatnonzero(rows_with([col], actions, "flag", n) | rows_with([col], actions, "quarantine", n)
+                                | rows_with([col], actions, "redact", n)):
+            for c in col[int(i)].as_py() or ():
+                if c["failed"] and actions.action(c["code"]) in MARKING and c["code"] not in out[i]:
+                    out[i].append(c["code"])
+    return out
+
+
+@dataclass
+class Verdict:
+    """The outcome for every sample, from every stage's checks in plan order (columnar)."""
+
+    kept: np.ndarray  # bool per row
+    quarantined: np.ndarray  # bool per row (kept, and a failed check says quarantine)
+    reasons: pa.ListArray  # drop reasons per row, in stage order, without repeats
+    flags: pa.ListArray  # codes that mark the row (flag, quarantine, redact; a reviewer's keep)
+    redacted: pa.ListArray  # codes whose finding is redacted in the output
+    stopped_at: pa.Array  # the stage of the first drop, or null
+    records: pa.ListArray  # every check: stage, status, action and the record's fields
+
+    def flags_of(self, rows: Sequence[int]) -> list[list[str]]:
+        return self.flags.take(pa.array(rows, pa.int64())).to_pylist()
+
+    def redacted_of(self, rows: Sequence[int]) -> list[list[str]]:
+        return self.redacted.take(pa.array(rows, pa.int64())).to_pylist()
+
+
+def _lists(parents: np.ndarray, values: pa.Array, n: int) -> pa.ListArray:
+    """A list per row from (row, value) pairs already in row order."""
+    counts = np.bincount(parents, minlength=n) if len(parents) else np.zeros(n, np.int64)
+    offsets = np.concatenate([[0], np.cumsum(counts)]).astype(np.int32)
+    return pa.ListArray.from_arrays(pa.array(offsets, pa.int32()), values)
+
+
+def _first_per_row(parents: np.ndarray, keys: np.ndarray) -> np.ndarray:
+    """Positions of the first occurrence of each (row, key) pair, in their original order."""
+    if not len(parents):
+        return np.zeros(0, np.int64)
+    pair = parents.astype(np.int64) * (int(keys.max()) + 1) + keys.astype(np.int64)
+    _, first = np.unique(pair, return_index=True)
+    return np.sort(first)
+
+
+def verdict(stage_checks: Sequence[tuple[str, pa.ChunkedArray | pa.Array]], skipped: dict[str, np.ndarray],
+            skip_codes: dict[str, list[str]], actions: Actions, n: int) -> Verdict:
+    """`stage_checks`: (stage, its check column) in plan order. `skipped[stage]`: rows the stage did not see
+    because an earlier check dropped them; `skip_codes[stage]`: that stage's codes, listed as skipped."""
+    cols = [(stage, c.combine_chunks() if isinstance(c, pa.ChunkedArray) else c) for stage, c in stage_checks]
+    reviewed_keep = rows_with([c for _, c in cols], actions, "keep", n, lambda code: code == OVERRIDE)
+    first_reason = np.full(n, None, dtype=object)
+    parts: list[tuple[np.ndarray, pa.StructArray]] = []
+    for stage, col in cols:
+        skip = skipped.get(stage)
+        if skip is not None and skip.any() and skip_codes.get(stage):
+            parts.append(_skipped_records(stage, np.flatnonzero(skip), skip_codes[stage], first_reason))
+        if len(col) == 0:
+            continue
+        flat = pc.list_flatten(col)
+        if len(flat) == 0:
+            continue
+        parents = np.asarray(pc.list_parent_indices(col).to_numpy(zero_copy_only=False), dtype=np.int64)
+        rec = _stage_records(stage, flat, parents, actions, reviewed_keep)
+        parts.append((parents, rec))
+        act = np.asarray(rec.field("action").to_numpy(zero_copy_only=False), dtype=object)
+        failed = np.asarray(rec.field("failed").to_numpy(zero_copy_only=False), dtype=bool)
+        drop = np.flatnonzero(failed & (act == "drop"))
+        codes = rec.field("code").to_numpy(zero_copy_only=False)
+        rows, pos = np.unique(parents[drop], return_index=True)
+        fresh = [k for k, r in enumerate(rows) if first_reason[r] is None]
+        for k in fresh:
+            first_reason[rows[k]] = actions.reason(codes[drop[pos[k]]])
+    if parts:
+        parents = np.concatenate([p for p, _ in parts])
+        recs = pa.concat_arrays([r for _, r in parts])
+        order = np.argsort(parents, kind="stable")  # stage order within each row
+        parents, recs = parents[order], recs.take(pa.array(order))
+    else:
+        parents, recs = np.zeros(0, np.int64), pa.array([], LEDGER_CHECK)
+    return _outcome(parents, recs, n, actions)
+
+
+def _stage_records(stage: str, flat: pa.StructArray, parents: np.ndarray, actions: Actions,
+                   reviewed_keep: np.ndarray) -> pa.StructArray:
+    codes = flat.field("code")
+    uniq = pc.unique(codes).to_pylist()
+    act_of = pa.array([actions.action(c) for c in uniq], pa.string())
+    act = np.asarray(act_of.take(pc.index_in(codes, value_set=pa.array(uniq, pa.string()))).to_numpy(
+        zero_copy_only=False), dtype=object)
+    failed = np.asarray(pc.fill_null(flat.field("failed"), False).to_numpy(zero_copy_only=False), dtype=bool)
+    can = pa.array([c for c in uniq if actions.overridable(c)], pa.string())
+    overridable = np.asarray(pc.is_in(codes, value_set=can).to_numpy(zero_copy_only=False), dtype=bool)
+    over = failed & (act == "drop") & overridable & reviewed_keep[parents]
+    act = np.where(over, "overridden", act)  # a reviewer kept the sample despite this check
+    m = len(flat)
+    return pa.StructArray.from_arrays(
+        [pa.array(np.full(m, stage, dtype=object), pa.string()), codes,
+         pa.array(np.where(failed, "fail", "pass").astype(object), pa.string()), pa.array(act, pa.string()),
+         flat.field("detail"), flat.field("value"), flat.field("threshold"), flat.field("op"), flat.field("unit"),
+         pa.array(failed)], fields=list(LEDGER_CHECK))
+
+
+def _skipped_records(stage: str, rows: np.ndarray, codes: list[str],
+                     first_reason: np.ndarray) -> tuple[np.ndarray, pa.StructArray]:
+    r = np.repeat(rows, len(codes))
+    c = np.tile(np.asarray(codes, dtype=object), len(rows))
+    because = pa.array(first_reason[r], pa.string())
+    detail = pc.if_else(pc.is_null(because), "not checked: dropped earlier",
+                        pc.binary_join_element_wise("not checked: dropped earlier (", because, ")", ""))
+    m = len(r)
+    none_f, none_s = pa.nulls(m, pa.float64()), pa.nulls(m, pa.string())
+    return r, pa.StructArray.from_arrays(
+        [pa.array(np.full(m, stage, dtype=object), pa.string()), pa.array(c, pa.string()),
+         pa.array(np.full(m, "skipped", dtype=object), pa.string()), none_s, detail,
+         none_f, none_f, none_s, none_s, pa.array(np.zeros(m, bool))], fields=list(LEDGER_CHECK))
+
+
+def _outcome(parents: np.ndarray, recs: pa.StructArray, n: int, actions: Actions) -> Verdict:
+    act = np.asarray(recs.field("action").to_numpy(zero_copy_only=False), dtype=object)
+    failed = np.asarray(recs.field("failed").to_numpy(zero_copy_only=False), dtype=bool)
+    codes = np.asarray(recs.field("code").to_numpy(zero_copy_only=False), dtype=object)
+    stages = np.asarray(recs.field("stage").to_numpy(zero_copy_only=False), dtype=object)
+    if len(codes):
+        uniq, code_id = np.unique(codes.astype(str), return_inverse=True)
+    else:
+        uniq, code_id = np.zeros(0, dtype=str), np.zeros(0, np.int64)
+    reason_of = np.array([actions.reason(c) for c in uniq], dtype=object)
+
+    def pick(mask: np.ndarray) -> np.ndarray:
+        idx = np.flatnonzero(mask)
+        return idx[_first_per_row(parents[idx], code_id[idx])]
+
+    drop = pick(failed & (act == "drop"))
+    reasons = _lists(parents[drop], pa.array(reason_of[code_id[drop]], pa.string()), n)
+    mark = pick(failed & (np.isin(act, list(MARKING)) | (codes == OVERRIDE)))
+    flags = _lists(parents[mark], pa.array(codes[mark], pa.string()), n)
+    red = pick(failed & (act == "redact"))
+    redacted = _lists(parents[red], pa.array(codes[red], pa.string()), n)
+    kept = np.ones(n, bool)
+    kept[parents[drop]] = False
+    quarantined = np.zeros(n, bool)
+    quarantined[parents[failed & (act == "quarantine")]] = True
+    quarantined &= kept
+    stopped = np.full(n, None, dtype=object)
+    if len(drop):
+        rows, pos = np.unique(parents[drop], return_index=True)
+        stopped[rows] = stages[drop[pos]]
+    return Verdict(kept, quarantined, reasons, flags, redacted, pa.array(stopped, pa.string()),
+                   _lists(parents, recs, n))
+
+
+LEDGER_CHECK = pa.struct(
+    [
+        ("stage", pa.string()),
+        ("code", pa.string()),
+        ("status", pa.string()),  # pass | fail | skipped
+        ("action", pa.string()),  # the code's action in this run (null when skipped)
+        ("detail", pa.string()),
+        ("value", pa.float64()),
+        ("threshold", pa.float64()),
+        ("op", pa.string()),
+        ("unit", pa.string()),
+        ("failed", pa.bool_()),
+    ]
+)
+
+__all__ = ["ACTIONS", "Actions", "LEDGER_CHECK", "MARKING", "Verdict", "alive", "flags_so_far", "rows_with",
+           "verdict"]
