@@ -62,18 +62,7 @@ def leakcheck(a: str | Path, b: str | Path, *, radius: int | None = None, semant
         raise ConfigError(f"radius must be 0..64 bits, got {r}", key="radius")
     cache = str(cache_dir) if cache_dir else None
     timings: dict[str, float] = {}
-    sets, codes = [], []
-    for which, path in (("a", a), ("b", b)):
-        t = time.perf_counter()
-        s = imagesets.list_set(path)
-        if len(s) == 0:
-            raise InputError(f"set {which.upper()} ({path}) holds no images; nothing to compare")
-        timings[f"list_{which}"] = time.perf_counter() - t
-        t = time.perf_counter()
-        sc = imagesets.set_codes(s, settings, cache_dir=cache, workers=workers)
-        timings[f"hash_{which}"] = time.perf_counter() - t
-        sets.append(s)
-        codes.append(sc)
+    sets, codes = _hash_sets(a, b, settings, cache, workers, timings)
     t = time.perf_counter()
     check_r = getattr(getattr(cfg, "neardup", None), "check_radius", similarity.CHECK_RADIUS)
     pairs = cross_set_pairs(codes[0], codes[1], r, int(check_r))
@@ -103,6 +92,23 @@ def leakcheck(a: str | Path, b: str | Path, *, radius: int | None = None, semant
         timings["html"] = time.perf_counter() - t
     out["seconds"] = round(time.perf_counter() - t0, 4)
     return out
+
+
+def _hash_sets(a: str | Path, b: str | Path, settings: Any, cache: str | None, workers: int,
+               timings: dict[str, float]) -> tuple[list[imagesets.ImageSet], list[imagesets.SetCodes]]:
+    """List and hash both sets (codes cached in `cache`), timing each step into `timings`."""
+    sets, codes = [], []
+    for which, path in (("a", a), ("b", b)):
+        t = time.perf_counter()
+        s = imagesets.list_set(path)
+        if len(s) == 0:
+            raise InputError(f"set {which.upper()} ({path}) holds no images; nothing to compare")
+        timings[f"list_{which}"] = time.perf_counter() - t
+        t = time.perf_counter()
+        codes.append(imagesets.set_codes(s, settings, cache_dir=cache, workers=workers))
+        timings[f"hash_{which}"] = time.perf_counter() - t
+        sets.append(s)
+    return sets, codes
 
 
 def _config(config: str | Path | None) -> Any:

@@ -24,7 +24,7 @@ from pathlib import Path
 from PIL import Image, ImageDraw, ImageFilter, ImageFont, ImageOps
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from curate.hashing import min_distance  # noqa: E402
+from curate import similarity  # noqa: E402
 
 import workshop  # noqa: E402
 
@@ -40,9 +40,11 @@ ORIGINAL_SIZES = ((800, 600), (600, 800), (768, 576), (720, 720), (800, 640), (6
 
 CSV_FIELDS = ("source", "expect", "reason", "group", "width", "height", "note")
 
-# Distinct scenes are re-drawn until their perceptual codes (the pipeline's own multi-view pHash,
-# curate.hashing with the default [hashes] settings, closest views) are at least this many bits
-# from every scene drawn before, so no two unrelated samples look like near-duplicates.
+# Distinct scenes are re-drawn until their perceptual codes (multi-view pHash of the crops, no
+# transformed views or check codes: DRAW_CODES, closest views) are at least this many bits from
+# every scene drawn before, so no two unrelated samples look like near-duplicates. The draw keeps
+# these settings whatever the pipeline's defaults, so the demo's bytes never change with them;
+# check_hashes then checks the built corpus with the pipeline's own default codes.
 # Common practice: up to about 10 bits marks a likely variant (see shared FACTS); the default
 # neardup radius is 8.
 MIN_DISTINCT_BITS = 13
@@ -50,6 +52,9 @@ MIN_DISTINCT_BITS = 13
 MAX_VARIANT_BITS = 10
 # Every planted near-duplicate stays within this many bits of its original (the neardup radius).
 CLOSE_VARIANT_BITS = 8
+
+
+DRAW_CODES = similarity.CodeSettings(transforms=[], check="")
 
 
 @dataclass
@@ -136,8 +141,8 @@ class Corpus:
             r = random.Random(self.rng.getrandbits(64))
             spec = workshop.random_spec(r)
             img = workshop.render(spec, size or r.choice(GOOD_SIZES), r)
-            h = codes(img)
-            if all(min_distance(h, other) >= MIN_DISTINCT_BITS for other in self.scene_hashes):
+            h = similarity.image_codes(img, DRAW_CODES)
+            if all(similarity.min_distance(h, other) >= MIN_DISTINCT_BITS for other in self.scene_hashes):
                 self.scene_hashes.append(h)
                 return spec, img, r
         raise RuntimeError("could not draw a scene distinct from the others")
@@ -551,6 +556,15 @@ def codes(img: Image.Image):
     from curate.stages.hashes import HashesConfig, image_codes
 
     return image_codes(img, HashesConfig())
+
+
+def min_distance(a, b) -> int:
+    """The pipeline's distance of two samples' default codes (curate.similarity, checks included)."""
+    from curate.stages.hashes import HashesConfig, code_settings
+
+    s = code_settings(HashesConfig())
+    (ma, ca), (mb, cb) = similarity.split_codes(a, s), similarity.split_codes(b, s)
+    return similarity.min_distance(ma, mb, similarity.identity_count(s), ca, cb)
 
 
 def decoded_hash(data: bytes):

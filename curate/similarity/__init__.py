@@ -17,6 +17,7 @@ from .codes import (
     code_count,
     identity_count,
     image_codes,
+    match_name,
     matched_transform,
     split_codes,
     view_count,
@@ -52,7 +53,7 @@ from .hamming import (
 )
 
 __all__ = [
-    "TRANSFORMS", "CodeSettings", "View", "code_count", "identity_count", "image_codes", "matched_transform",
+    "TRANSFORMS", "CodeSettings", "View", "code_count", "identity_count", "image_codes", "match_name", "matched_transform",
     "split_codes", "view_count", "views",
     "cosine_pairs", "cross_cosine",
     "SIGNALS", "Groups", "Signals", "UnionFind", "components", "greedy_leaders", "group", "sample_components",

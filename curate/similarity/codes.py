@@ -303,3 +303,14 @@ def matched_transform(view_list: Sequence[View], kept_view: int, member_view: in
     if tk != "identity":
         return tk
     return INVERSE[tm]
+
+
+def match_name(view_list: Sequence[View], kept_view: int, member_view: int) -> str:
+    """How a member relates to its kept picture, from the two views that matched: the transform
+    (``matched_transform``), with "+crop" when the two views are different crop boxes ("crop"
+    alone for an untransformed crop); "identity" when the same view of both matched."""
+    t = matched_transform(view_list, kept_view, member_view)
+    cropped = view_list[int(kept_view)].box != view_list[int(member_view)].box
+    if not cropped:
+        return t
+    return "crop" if t == "identity" else f"{t}+crop"
