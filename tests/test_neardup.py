@@ -274,6 +274,24 @@ def test_semantic_links_need_embeddings_and_the_threshold():
     assert out["v"]["group_size"] == 1
 
 
+def test_semantic_links_reach_every_copy_of_the_same_file():
+    # p and q are the same file (same bytes, same embedding); r is a larger copy by embedding only.
+    # The search runs once per file, but the leader rule needs r linked to both: r (most pixels)
+    # claims p and q, so no copy is left as a keeper of its own.
+    rng = np.random.default_rng(1)
+    e = rng.standard_normal((3, 32)).astype(np.float32)
+    e[1] = e[0]
+    e[2] = e[0] + 0.01 * rng.standard_normal(32)
+    e /= np.linalg.norm(e, axis=1, keepdims=True)
+    rows = [{"id": "p", "sha": "aa" * 32, "codes": _codes(1), "width": 100, "height": 100},
+            {"id": "q", "sha": "aa" * 32, "codes": _codes(1), "width": 100, "height": 100},
+            {"id": "r", "sha": "bb" * 32, "codes": _codes(2), "width": 200, "height": 200}]
+    out = _by_id(_run(_table(rows, emb=e)))
+    assert out["p"]["dup_of"] == "r" and out["q"]["dup_of"] == "r" and out["r"]["group_size"] == 3
+    assert out["p"]["dup_signal"] == out["q"]["dup_signal"] == "embedding"
+    assert out["q"]["dup_transform"] is None
+
+
 def test_empty_and_all_undecoded():
     out = _run(_table([]))
     assert out.num_rows == 0 and out.schema == neardup.OUTPUT_SCHEMA

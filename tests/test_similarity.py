@@ -514,8 +514,9 @@ def _unit(rng, n, d):
     return x / np.linalg.norm(x, axis=1, keepdims=True)
 
 
-def test_cosine_pairs_exact_mode_matches_scikit_learn():
-    # Reference library: scikit-learn's cosine_similarity over every pair.
+@pytest.mark.parametrize("backend", ["numpy", "faiss"])
+def test_cosine_pairs_exact_mode_matches_scikit_learn(backend):
+    # Reference library: scikit-learn's cosine_similarity over every pair (both engines).
     from sklearn.metrics.pairwise import cosine_similarity
 
     rng = np.random.default_rng(0)
@@ -525,12 +526,13 @@ def test_cosine_pairs_exact_mode_matches_scikit_learn():
     s = cosine_similarity(x)
     assert not np.any(np.abs(s - 0.97) < 1e-5)  # no pair within float rounding of the threshold
     ref = {(i, j) for i in range(len(x)) for j in range(i + 1, len(x)) if s[i, j] >= 0.97}
-    p = S.cosine_pairs(x, 0.97)
+    p = S.cosine_pairs(x, 0.97, backend=backend)
     assert set(zip(p.i.tolist(), p.j.tolist())) == ref and len(ref) >= 30
     assert np.allclose(p.distance, s[p.i, p.j], atol=1e-5)
 
 
-def test_cosine_pairs_clustered_mode():
+@pytest.mark.parametrize("backend", ["numpy", "faiss"])
+def test_cosine_pairs_clustered_mode(backend):
     # SemDeDup-style search within k-means clusters: every pair it reports is real; with every
     # cluster probed it finds them all.
     rng = np.random.default_rng(1)
@@ -539,16 +541,17 @@ def test_cosine_pairs_clustered_mode():
     x /= np.linalg.norm(x, axis=1, keepdims=True)
     s = x @ x.T
     ref = {(i, j) for i, j in zip(*np.nonzero(np.triu(s >= 0.98, 1)))}
-    part = S.cosine_pairs(x, 0.98, clusters=30, probes=2, exact_max=100)
+    part = S.cosine_pairs(x, 0.98, clusters=30, probes=2, exact_max=100, backend=backend)
     got = set(zip(part.i.tolist(), part.j.tolist()))
     assert got <= ref and len(got) >= 0.95 * len(ref)
-    full = S.cosine_pairs(x, 0.98, clusters=8, probes=8, exact_max=100)
+    full = S.cosine_pairs(x, 0.98, clusters=8, probes=8, exact_max=100, backend=backend)
     assert set(zip(full.i.tolist(), full.j.tolist())) == ref
-    again = S.cosine_pairs(x, 0.98, clusters=30, probes=2, exact_max=100)
+    again = S.cosine_pairs(x, 0.98, clusters=30, probes=2, exact_max=100, backend=backend)
     assert all(np.array_equal(a, b) for a, b in zip(part, again))  # deterministic
 
 
-def test_cross_cosine_equals_scikit_learn():
+@pytest.mark.parametrize("backend", ["numpy", "faiss"])
+def test_cross_cosine_equals_scikit_learn(backend):
     # Reference library: scikit-learn's cosine_similarity over every pair.
     from sklearn.metrics.pairwise import cosine_similarity
 
@@ -559,7 +562,7 @@ def test_cross_cosine_equals_scikit_learn():
     b /= np.linalg.norm(b, axis=1, keepdims=True)
     ref = cosine_similarity(a, b)
     want = set(zip(*np.nonzero(ref >= 0.97)))
-    p = cosine.cross_cosine(a, b, 0.97, block=64)
+    p = cosine.cross_cosine(a, b, 0.97, block=64, backend=backend)
     assert not np.any(np.abs(ref - 0.97) < 1e-5)
     assert set(zip(p.i.tolist(), p.j.tolist())) == want and len(want) >= 20
     assert np.allclose(p.distance, ref[p.i, p.j], atol=1e-5)

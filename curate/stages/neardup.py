@@ -221,9 +221,9 @@ def embedding_links(emb: np.ndarray, has_emb: np.ndarray, sha_key: np.ndarray, c
     on one row per distinct file (same bytes, same embedding); its pairs reach every copy."""
     n = sha_key.shape[0]
     key = np.where(sha_key >= 0, sha_key, -1 - np.arange(n))  # unknown bytes: a key of its own
-    _, first, inv = np.unique(key, return_index=True, return_inverse=True)
-    cls = inv.ravel()
-    reps = first[has_emb[first]]
+    cls = np.unique(key, return_inverse=True)[1].ravel()
+    with_emb = np.flatnonzero(has_emb)
+    reps = with_emb[np.unique(cls[with_emb], return_index=True)[1]]  # first row with an embedding per file
     empty = (np.empty(0, np.int64), np.empty(0, np.int64), np.empty(0, np.float32))
     if reps.shape[0] < 2:
         return empty
