@@ -310,8 +310,10 @@ def test_registration_and_config():
     # 3 centred + 4 edge crops = 7 identity views; each transform adds 7 views; a check code per view.
     cfg = pipeline_config("neardup.radius=6", "hashes.transforms=[]", 'hashes.check=""')
     assert cfg.neardup.radius == 6 and hashes_mod.variants(cfg.hashes) == 7
-    cfg = pipeline_config('hashes.transforms=["mirror", "rot180"]')
+    cfg = pipeline_config('hashes.transforms=["mirror", "rot180"]', 'hashes.transform_boxes="all"')
     assert hashes_mod.variants(cfg.hashes) == 2 * 21
+    cfg = pipeline_config('hashes.transforms=["mirror", "rot180"]', 'hashes.transform_boxes="whole"')
+    assert hashes_mod.variants(cfg.hashes) == 2 * 9
     for bad in ("neardup.radius=40", "neardup.cosine=1.5", "hashes.scales=[]", "hashes.corner_mask=0.6",
                 'hashes.transforms=["sideways"]', 'hashes.check="phash"', "neardup.check_radius=70"):
         with pytest.raises(ConfigError):
