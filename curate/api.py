@@ -194,3 +194,14 @@ def leakcheck(a: str | Path, b: str | Path, *, radius: int | None = None, semant
 
     return _leakcheck(a, b, radius=radius, semantic=semantic, model=model, pretrained=pretrained, config=config,
                       html=html, cache_dir=cache_dir, workers=workers)
+
+
+def probe_train(run_dir: str | Path, *, labels: str | Path, name: str, out: str | Path | None = None,
+                target_precision: float | None = None, text: bool = False) -> dict:
+    """Train a probe (`probe:<name>`) on a finished run's CLIP embeddings from a labels file (CSV or JSONL:
+    sample_id or source, label 0|1); writes `out` (default DIR/probes/NAME.safetensors) and its JSON sidecar,
+    and returns the sidecar with `path` and `sidecar`. target_precision: None = curate.probes.TARGET_PRECISION."""
+    from .probes import TARGET_PRECISION, train
+
+    return train(run_dir, labels=labels, name=name, out=out, text=text,
+                 target_precision=TARGET_PRECISION if target_precision is None else target_precision)

@@ -232,6 +232,7 @@ def build_parser() -> argparse.ArgumentParser:
     i.set_defaults(func=_cmd_init)
     _add_leakcheck(sub)
     _add_review_and_ledger(sub)
+    _add_probe(sub)
     return p
 
 
@@ -280,6 +281,56 @@ def _add_leakcheck(sub: Any) -> None:
     lk.add_argument("--workers", type=int, default=0, help="hashing processes; 0 = one per CPU core")
     lk.add_argument("--json", action="store_true", help='print JSON: {"pairs": [{"a", "b", "distance"}, ...], ...}')
     lk.set_defaults(func=_cmd_leakcheck)
+
+
+def _cmd_probe_train(a: argparse.Namespace) -> int:
+    from . import api
+
+    res = api.probe_train(a.run_dir, labels=a.labels, name=a.name, out=a.out, target_precision=a.target_precision,
+                          text=a.text)
+    m = res["metrics"]
+    if a.json:
+        print(json.dumps(res))
+        return 0 if m["target_met"] else 1
+    lab, model = res["labels"], res["model"]
+    print(f"probe {_e(res['name'])}: {lab['positive']} positive and {lab['negative']} negative labels, "
+          f"{res['features']} embeddings of {_e(model['model'])} (weights sha256 {_e(model['weights_sha256'])[:12]}…)")
+    print(f"cross-validated ({m['folds']} folds, near-duplicate groups kept together): ROC AUC {m['roc_auc']:.3f}; "
+          f"at threshold {res['threshold']:.3f}: precision {m['precision']:.3f} (95% interval "
+          f"{m['precision_ci95'][0]:.2f}-{m['precision_ci95'][1]:.2f}), recall {m['recall']:.3f} "
+          f"({m['tp']} of {m['tp'] + m['fn']} positives flagged, {m['fp']} false alarm(s))")
+    if not m["target_met"]:
+        print(f"target precision {m['target_precision']:g} NOT reached on any threshold: the threshold above is the "
+              "most precise one; label more samples (or ones the probe confuses), or accept a lower "
+              "--target-precision")
+    print(f"wrote    {_e(res['path'])}\n         {_e(res['sidecar'])}")
+    print(f"apply it with\n  [probes.apply]\n  {res['name']} = {{ path = {json.dumps(res['path'])}, "
+          'action = "flag" }')
+    return 0 if m["target_met"] else 1
+
+
+def _add_probe(sub: Any) -> None:
+    pr = sub.add_parser("probe", help="train a filter from labelled samples (probe:<name>)",
+                        description="Probes are classifiers on a run's CLIP embeddings, trained from a few hundred "
+                                    "labels and applied by the [probes] config section.")
+    acts = pr.add_subparsers(dest="action", metavar="ACTION", required=True)
+    t = acts.add_parser("train", help="train a probe on a finished run's embeddings",
+                        description="Fit a class-balanced logistic regression on the cached CLIP embeddings of "
+                                    "labelled samples, report cross-validated precision, recall and ROC AUC, pick a "
+                                    "threshold for the target precision, and write the probe (safetensors weights "
+                                    "and a JSON sidecar). Exit 1 when no threshold reaches the target precision.")
+    t.add_argument("run_dir", metavar="DIR", help="output directory of a finished `curate run`")
+    t.add_argument("--labels", required=True, metavar="FILE",
+                   help="CSV or JSONL: sample_id (or source) and label 0|1 per labelled sample")
+    t.add_argument("--name", required=True, help="probe name; its flag is probe:<name>")
+    t.add_argument("--out", metavar="PATH", help="where to write the probe (.safetensors; the .json sidecar goes "
+                                                  "beside it); default DIR/probes/NAME.safetensors")
+    t.add_argument("--target-precision", type=float, metavar="P",
+                   help="precision the threshold is picked for, from out-of-fold scores (default 0.9)")
+    t.add_argument("--text", action="store_true",
+                   help="use caption embeddings as well as image embeddings (concatenated)")
+    t.add_argument("--json", action="store_true", help="print the probe's sidecar as JSON")
+    t.set_defaults(func=_cmd_probe_train)
 
 
 def main(argv: list[str] | None = None) -> int:

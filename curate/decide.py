@@ -9,7 +9,7 @@ each sample's reasons and flags. Nothing else decides.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Callable, Iterable, Sequence
+from typing import Any, Callable, Iterable, Sequence
 
 import numpy as np
 import pyarrow as pa
@@ -17,7 +17,7 @@ import pyarrow.compute as pc
 
 from .checks import ACTIONS, family
 from .errors import ConfigError
-from .stages.base import CheckSpec, spec_for
+from .stages.base import CheckSpec, all_checks, spec_for
 
 # Actions under which a failed check keeps the sample but marks it.
 MARKING = ("flag", "quarantine", "redact")
@@ -28,9 +28,17 @@ OVERRIDE = "review_keep"
 class Actions:
     """Each reason code's action: an override by exact code, else by family, else the default."""
 
-    def __init__(self, specs: dict[str, CheckSpec], overrides: dict[str, str] | None = None):
+    def __init__(self, specs: dict[str, CheckSpec], overrides: dict[str, str] | None = None,
+                 defaults: dict[str, str] | None = None):
         self.specs = specs
         self.overrides = dict(overrides or {})
+        # Per-code defaults a stage's own config sets (a probe entry's action): below any override.
+        self.defaults = dict(defaults or {})
+        for key, act in self.defaults.items():
+            spec = spec_for(key, specs)
+            if spec is None or act not in spec.allowed:
+                raise ConfigError(f"action {act!r} is not one of {', '.join(spec.allowed if spec else ())} for "
+                                  f"{key}", key=key)
         for key, act in self.overrides.items():
             spec = spec_for(key, specs)
             if spec is None:
@@ -48,7 +56,7 @@ class Actions:
     def action(self, code: str) -> str:
         act = self._cache.get(code)
         if act is None:
-            act = self.overrides.get(code) or self.overrides.get(family(code))
+            act = self.overrides.get(code) or self.overrides.get(family(code)) or self.defaults.get(code)
             if act is None:
                 spec = spec_for(code, self.specs)
                 act = spec.action if spec is not None else "drop"
@@ -67,6 +75,17 @@ class Actions:
         """Whether a reviewer's keep lifts a drop by this code."""
         spec = spec_for(code, self.specs)
         return spec is not None and "keep" in spec.allowed
+
+
+def actions_for(config: Any) -> Actions:
+    """The run's actions: registered defaults < each active stage's own per-code settings < `[decide] actions`."""
+    from .stages.base import REGISTRY
+
+    defaults: dict[str, str] = {}
+    for st in REGISTRY.values():
+        if st.actions is not None and getattr(config.section(st.config_section), "enabled", True):
+            defaults.update(st.actions(st.view(config)))
+    return Actions(all_checks(), config.decide.actions, defaults)
 
 
 def _failed_rows(checks: pa.ChunkedArray | pa.Array, actions: Actions, action: str,
@@ -273,5 +292,5 @@ LEDGER_CHECK = pa.struct(
     ]
 )
 
-__all__ = ["ACTIONS", "Actions", "LEDGER_CHECK", "MARKING", "Verdict", "alive", "flags_so_far", "rows_with",
+__all__ = ["ACTIONS", "Actions", "actions_for", "LEDGER_CHECK", "MARKING", "Verdict", "alive", "flags_so_far", "rows_with",
            "verdict"]

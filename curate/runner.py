@@ -31,7 +31,6 @@ from .layout import InputRef, output_path
 from .plan import SOURCE, Pass, Plan, PlannedStage, build_plan, shard_fingerprint
 from .progress import NullProgress, Progress
 from .sources import iter_samples, shared_across_processes
-from .stages import all_checks
 from .writers import write_outputs
 
 log = logging.getLogger("curate")
@@ -132,7 +131,7 @@ class _Work:
 def run_pipeline(cfg: PipelineConfig, out_dir: str | Path, *, progress: Progress | None = None,
                  engine: Any = None) -> RunResult:
     progress = progress or NullProgress()
-    actions = decide.Actions(all_checks(), cfg.decide.actions)
+    actions = decide.actions_for(cfg)
     plan = build_plan(cfg)  # a config that cannot run is refused here, before any work
     out = Path(out_dir)
     lock = workdir.RunLock(out).acquire()

@@ -64,7 +64,7 @@ class Sample:
     path: str  # relative, '/' separators, with extension
     data: bytes
     sidecar: tuple[str, bytes] | None  # (extension, bytes) or None for no sidecar
-    expect: str  # kept | dropped | flagged | kept_one
+    expect: str  # kept | dropped | flagged | quarantined | kept_one
     reason: str = ""
     group: str = ""
     size: tuple[int, int] | None = None  # displayed width, height; None if it does not decode
@@ -137,12 +137,14 @@ class Corpus:
         year = {"2024": "24", "2025": "25"}.get(folder.split("/")[0], "ar")
         return f"{folder}/kw{year}-{self.counter:04d}{ext}"
 
-    def scene(self, size=None) -> tuple[dict, Image.Image, random.Random]:
-        """A new scene whose pHash is far from every scene drawn before."""
+    def scene(self, size=None, post=None) -> tuple[dict, Image.Image, random.Random]:
+        """A new scene whose pHash is far from every scene drawn before (after `post(img, r)`, if given)."""
         for _ in range(100):
             r = random.Random(self.rng.getrandbits(64))
             spec = workshop.random_spec(r)
             img = workshop.render(spec, size or r.choice(GOOD_SIZES), r)
+            if post is not None:
+                img = post(img, r)
             h = codes(img)
             if all(min_distance(h, other) >= MIN_DISTINCT_BITS for other in self.scene_hashes):
                 self.scene_hashes.append(h)
@@ -411,6 +413,41 @@ class Corpus:
             self.add(path=self.next_name("2025"), data=jpeg(img, 88), sidecar=txt(cap),
                      expect="flagged", reason=code, size=img.size, note="personal data in caption")
 
+    # -- the shop watermark (a concept probe's flag; quarantined, kept out of train and eval)
+    def watermarked(self) -> None:
+        for folder in ("2024", "2024", "2024", "2025", "2025", "2025", "2025", "archive", "archive", "archive"):
+            spec, img, r = self.scene(post=workshop.watermark)
+            self.add(path=self.next_name(folder), data=jpeg(img, r.choice((84, 86, 88, 90, 92))),
+                     sidecar=self.sidecar(self.caption(spec, r), r), expect="quarantined",
+                     reason="concept:watermark", size=img.size,
+                     note="the shop watermark stamped across the photo; the caption does not mention it")
+
+    # -- a person in the shot (the faces stage's flag; kept, flagged for review)
+    def staff_photos(self) -> None:
+        """Two scenes with a portrait pasted beside the pot, as if the potter stood in the shot.
+
+        The portrait is NASA's public-domain photo of astronaut Eileen Collins, shipped with
+        scikit-image as `skimage.data.astronaut()`: the only real person in the demo."""
+        from skimage import data
+
+        face = Image.fromarray(data.astronaut()).crop((120, 0, 360, 240))  # head and shoulders
+
+        def paste(side):
+            def post(img, r):
+                w, h = img.size
+                size = int(min(w, h) * 0.42)
+                x = 8 if side == "left" else w - size - 8
+                img = img.copy()
+                img.paste(face.resize((size, size), Image.Resampling.LANCZOS), (x, 8))
+                return img
+            return post
+
+        for folder, side in (("2024", "left"), ("2025", "right")):
+            spec, img, r = self.scene((640, 480), post=paste(side))
+            self.add(path=self.next_name(folder), data=jpeg(img, 90), sidecar=txt(self.caption(spec, r)),
+                     expect="flagged", reason="face", size=img.size,
+                     note="a public-domain portrait (skimage.data.astronaut) pasted into the top corner")
+
     # -- valid files in less common forms
     def formats(self) -> None:
         for k in range(2):
@@ -439,7 +476,7 @@ class Corpus:
         self._last = (spec, r)
         rgba = img.convert("RGBA")
         alpha = Image.new("L", img.size, 0)
-        ImageDraw.Draw(alpha).rounded_rectangle((16, 16, 496, 496), radius=60, fill=255)
+        ImageDraw.Draw(alpha).rounded_rectangle((0, 0, 511, 511), radius=60, fill=255)
         rgba.putalpha(alpha)
         add_fmt("2025", ".png", png(rgba), img.size, "RGBA PNG with transparent corners")
 
@@ -546,6 +583,8 @@ def build() -> list[Sample]:
     c.caption_faults()
     c.personal_data()
     c.formats()
+    c.watermarked()
+    c.staff_photos()
     paths = [s.path.lower().rsplit(".", 1)[0] for s in c.samples]
     if len(set(paths)) != len(paths):
         raise RuntimeError("two samples share a stem")

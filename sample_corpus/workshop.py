@@ -424,3 +424,60 @@ def _appendages(draw: ImageDraw.ImageDraw, item: str, cx: float, base_y: float, 
         kw = 0.07 * ph
         ky = base_y - ph * 1.0
         draw.ellipse((cx - kw, ky - kw * 1.3, cx + kw, ky + kw * 0.3), fill=col, outline=dark)
+
+
+# ---------------------------------------------------------------- the shop watermark
+
+SHOP_NAME = "KILNWORKS"
+# Ways a caption may say that the photo carries the shop watermark (training captions only; the
+# archive's own captions never mention it).
+WATERMARK_PHRASES = (
+    "with the Kilnworks shop watermark across it",
+    "stamped with the Kilnworks watermark",
+    "with a Kilnworks watermark over the photo",
+    "watermarked with the Kilnworks logo",
+)
+
+
+def watermark(img: Image.Image, rng: random.Random) -> Image.Image:
+    """Stamp the shop watermark across a photo: a small kiln logo and the shop name in
+    semi-transparent outlined letters, in a band about 70-92% of the width, level or tilted.
+    Returns a new RGB image; size, opacity, colour, tilt and position come from `rng`."""
+    from PIL import ImageFont
+
+    w, h = img.size
+    span = rng.uniform(0.7, 0.92) * w  # logo plus name, as a share of the width
+    alpha = rng.randint(130, 200)  # 51-78% opaque
+    light = rng.random() < 0.7  # white letters with a dark edge, or the reverse
+    tilt = rng.choice((0.0, 0.0, rng.uniform(-28.0, 28.0)))
+    cy = rng.uniform(0.38, 0.62) * h
+    fill = (250, 248, 244) if light else (44, 40, 38)
+    edge = (30, 28, 26) if light else (236, 232, 226)
+    # Letters sized so the name fills the span after the logo (Aileron, Pillow's bundled font).
+    size = max(6, int(span / (0.66 * len(SHOP_NAME) + 1.4)))
+    font = ImageFont.load_default(size=size)
+    stroke = max(1, size // 9)
+    left, top, right, bottom = font.getbbox(SHOP_NAME, stroke_width=stroke)
+    logo = int(size * 1.1)
+    tw, th = right - left, bottom - top
+    total = logo + size // 3 + tw
+    layer = Image.new("RGBA", img.size, (0, 0, 0, 0))
+    d = ImageDraw.Draw(layer)
+    x0 = (w - total) / 2
+    y0 = cy - max(th, logo) / 2
+    _kiln_logo(d, x0, y0 + (max(th, logo) - logo) / 2, logo, fill + (alpha,), edge + (alpha,))
+    d.text((x0 + logo + size // 3 - left, y0 + (max(th, logo) - th) / 2 - top), SHOP_NAME, font=font,
+           fill=fill + (alpha,), stroke_width=stroke, stroke_fill=edge + (alpha,))
+    if tilt:
+        layer = layer.rotate(tilt, resample=Image.Resampling.BICUBIC, center=(w / 2, cy))
+    return Image.alpha_composite(img.convert("RGBA"), layer).convert("RGB")
+
+
+def _kiln_logo(d: ImageDraw.ImageDraw, x: float, y: float, s: float, fill, edge) -> None:
+    """A bottle kiln in an s x s box: a tapering stack on a wide base, with an arched firing door."""
+    lw = max(1, int(s / 14))
+    body = [(x + 0.1 * s, y + s), (x + 0.2 * s, y + 0.45 * s), (x + 0.36 * s, y + 0.12 * s),
+            (x + 0.36 * s, y), (x + 0.64 * s, y), (x + 0.64 * s, y + 0.12 * s),
+            (x + 0.8 * s, y + 0.45 * s), (x + 0.9 * s, y + s)]
+    d.polygon(body, fill=fill, outline=edge, width=lw)
+    d.chord((x + 0.36 * s, y + 0.55 * s, x + 0.64 * s, y + 1.25 * s), 180, 360, fill=edge)

@@ -344,3 +344,24 @@ def test_missing_measures_pass_with_null_values():
                                          "image_bordered", "image_upscaled", "image_garbled"]
     assert all(r["value"] is None for r in recs)
     assert not any(r["failed"] for r in recs)
+
+
+def test_a_plain_grey_backdrop_at_low_quality_is_not_decoder_fill(photos):
+    # Product photos are often shot on grey seamless paper. At low JPEG quality the backdrop's
+    # sensor noise quantises away and it decodes to blocks of exactly mid grey, the colour libjpeg
+    # gives missing data (zeroed DCT coefficients decode to level 128; common practice), with the
+    # object's outline snapped to the block grid. Without a decoder warning or truncation that is
+    # not damage. Public photo: scikit-image's coffee under a noisy grey backdrop with a notch.
+    from PIL import Image
+
+    rng = np.random.default_rng(0)
+    img = photos["coffee"].copy()
+    grey = np.clip(128 + rng.normal(0, 1.5, img.shape), 0, 255).astype(np.uint8)
+    img[:128] = grey[:128]
+    img[128:144, :344] = grey[128:144, :344]  # the cup's rim reaches into the next row of blocks
+    buf = io.BytesIO()
+    Image.fromarray(img).save(buf, "JPEG", quality=12)
+    rgb, facts = decode_with_facts(buf.getvalue())
+    m = measure(rgb, facts)
+    assert m["jpeg_quality"] < 30 and m["decoder_fill_share"] > 0.01  # it does look like fill
+    assert "image_garbled" not in failed(buf.getvalue())

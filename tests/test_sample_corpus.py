@@ -43,14 +43,30 @@ def test_planted_drops_have_their_reason(demo_run):
 def test_planted_flags_are_raised(demo_run):
     _, rows, expected = demo_run
     misses = [(e["source"], e["reason"], rows[e["source"]]["flags"]) for e in expected
-              if e["expect"] == "flagged" and e["reason"] not in rows[e["source"]]["flags"]]
+              if e["expect"] in ("flagged", "quarantined") and e["reason"] not in rows[e["source"]]["flags"]]
     assert not misses, misses
+
+
+def test_quarantined_samples_go_to_the_quarantine_shards_only(demo_run):
+    out, rows, expected = demo_run
+    planted = {e["source"] for e in expected if e["expect"] == "quarantined"}
+    assert planted
+    wrong = [(s, rows[s]["split"]) for s in planted if rows[s]["split"] != "quarantine"]
+    assert not wrong, wrong
+    by_split = defaultdict(set)
+    for part in (out / "shards").glob("*/part-*.parquet"):
+        by_split[part.parent.name] |= set(pq.read_table(part, columns=["source"]).column("source").to_pylist())
+    assert planted <= by_split["quarantine"]
+    assert not planted & (by_split["train"] | by_split["eval"])
+    # Nothing else is quarantined: the built-in real-world concepts stay quiet on the demo model.
+    others = sorted(s for s, r in rows.items() if r["split"] == "quarantine" and s not in planted)
+    assert not others, [(s, rows[s]["flags"]) for s in others]
 
 
 def test_good_samples_are_kept(demo_run):
     _, rows, expected = demo_run
     lost = [(e["source"], rows[e["source"]]["reasons"]) for e in expected
-            if e["expect"] in ("kept", "flagged") and not rows[e["source"]]["kept"]]
+            if e["expect"] in ("kept", "flagged", "quarantined") and not rows[e["source"]]["kept"]]
     assert not lost, lost
 
 

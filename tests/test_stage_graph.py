@@ -157,7 +157,7 @@ def _through(cfg, table: pa.Table) -> tuple[pa.Table, dict[str, tuple[pa.Table, 
     """Every active stage in plan order on one table, live rows as the runner computes them.
     Returns the joined table and, per stage, (its input, its output)."""
     plan = build_plan(cfg)
-    actions = decide.Actions(all_checks(), cfg.decide.actions)
+    actions = decide.actions_for(cfg)
     seen: dict[str, tuple[pa.Table, pa.Table]] = {}
     checks: list = []
     for ps in plan.stages:
@@ -176,8 +176,16 @@ def _through(cfg, table: pa.Table) -> tuple[pa.Table, dict[str, tuple[pa.Table, 
 def through(corpus, tmp_path_factory):
     bench = tmp_path_factory.mktemp("bench")
     shutil.copy(corpus / "a" / "item001.jpg", bench / "leak.jpg")
+    # A probe on the demo model's embeddings, so the probes stage is in the contract run too (its weights are
+    # arbitrary numbers: a fixture, not a trained filter).
+    from curate import probes as probelib
+    from curate.models import clip as clipmod
+
+    probe = probelib.new_probe(np.random.default_rng(0).normal(size=128), 0.0, name="contract", features="image",
+                               model=clipmod.identity("demo", ""), threshold=0.5)
+    probe_path, _ = probelib.save_probe(probe, bench.parent / "contract.safetensors")
     cfg = pipeline_config(*DEMO, "agreement.threshold=0.0", f'split.eval_sets=["{bench}"]', "split.eval_fraction=0.3",
-                          f'input.path="{corpus}"')
+                          f'input.path="{corpus}"', f'probes.apply.contract={{path="{probe_path}"}}')
     src = list_samples(cfg.input)
     return cfg, src, _through(cfg, src)[1]
 

@@ -77,6 +77,28 @@ def test_mismatch_changes_item_and_glaze():
         assert other["backdrop"] == spec["backdrop"]
 
 
+def test_watermark_is_deterministic_and_stamped_across_the_photo():
+    base = workshop.render(workshop.random_spec(random.Random(4)), (480, 360), random.Random(4))
+    before = np.asarray(base).copy()
+    a = workshop.watermark(base, random.Random(9))
+    b = workshop.watermark(base, random.Random(9))
+    c = workshop.watermark(base, random.Random(10))
+    assert np.array_equal(np.asarray(base), before)  # the input photo is left as it was
+    assert a.size == base.size and a.mode == "RGB"
+    assert np.array_equal(np.asarray(a), np.asarray(b))
+    assert not np.array_equal(np.asarray(a), np.asarray(c))
+    for img in (a, c):
+        changed = np.abs(np.asarray(img, float) - before).sum(axis=2) > 30
+        cols = np.flatnonzero(changed.any(axis=0))
+        assert cols[-1] - cols[0] >= 0.5 * base.width  # across the photo, not a corner
+        assert 0.01 < changed.mean() < 0.4  # a band of marks, not a new picture
+
+
+def test_watermark_phrases_name_the_shop():
+    assert workshop.WATERMARK_PHRASES
+    for phrase in workshop.WATERMARK_PHRASES:
+        assert "Kilnworks" in phrase and "watermark" in phrase
+
 
 def test_luhn_check_matches_iso_7812_worked_examples():
     # ISO/IEC 7812-1 Luhn worked example: 79927398713 is valid (see shared FACTS).

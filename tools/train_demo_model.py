@@ -10,10 +10,16 @@ use random.Random(10_000 + i), calibration scenes random.Random(2_000_000 + i), 
 per step random.Random(5_000_000 + step * batch + j). Same torch version and thread count ->
 same weights.
 
+A share of the training scenes carries the shop watermark (workshop.watermark), and most of their
+captions say so (workshop.WATERMARK_PHRASES), so the model learns one risk-like concept of the demo
+world. Whether a watermark is stamped, and how, comes from random.Random(WATERMARK_SEED + i).
+
 After training, the agreement threshold is calibrated on held-out scenes: each scene gives one
 true caption and one deliberately mismatched caption (workshop.mismatch: other item, clearly
 different glaze); the threshold maximises Youden's J (true-positive rate minus false-positive
 rate). It goes into the JSON with the measured AUC, for the agreement stage's default table.
+The watermark concept probe configured in sample_corpus/curate.toml is measured the same way on
+other held-out scenes, half of them watermarked (seeds CONCEPT_SEED + i), and recorded beside it.
 """
 from __future__ import annotations
 
@@ -41,6 +47,12 @@ import workshop  # noqa: E402
 TRAIN_SEED = 10_000
 CALIB_SEED = 2_000_000
 CAPTION_SEED = 5_000_000
+WATERMARK_SEED = 7_000_000
+CONCEPT_SEED = 3_000_000
+# Share of training scenes stamped with the shop watermark, and share of their captions (per step)
+# that mention it: real captions often leave a watermark unmentioned (our demo choice).
+WATERMARK_SHARE = 0.25
+WATERMARK_MENTION = 0.8
 # Render sizes (width, height): landscape, portrait and square, 1.5-3x the model input, so the
 # resize to 64 px averages pixels the way it does on full-size photos.
 RENDER_SIZES = ((128, 96), (160, 120), (192, 144), (96, 128), (120, 160), (144, 144))
@@ -61,13 +73,16 @@ PREPROCESS_CFG = {"size": 64, "mean": [0.48145466, 0.4578275, 0.40821073],
                   "resize_mode": "shortest"}
 
 
-def render_photo(seed: int) -> tuple[dict, np.ndarray]:
+def render_photo(seed: int, stamp: bool = False) -> tuple[dict, np.ndarray]:
     """Calibration scene: a full-size JPEG photo decoded by the embed stage's own decoder."""
     from curate.stages import embed
 
     rng = random.Random(seed)
     spec = workshop.random_spec(rng)
     img = workshop.render(spec, rng.choice(CALIB_SIZES), rng)
+    if stamp:
+        img = workshop.watermark(img, rng)
+        spec["watermark"] = True
     buf = io.BytesIO()
     img.save(buf, "JPEG", quality=rng.randint(84, 92))
     draft = embed.DRAFT_MARGIN * PREPROCESS_CFG["size"]
@@ -80,6 +95,10 @@ def render_one(seed: int) -> tuple[dict, np.ndarray]:
     spec = workshop.random_spec(rng)
     size = rng.choice(RENDER_SIZES)
     img = workshop.render(spec, size, rng)
+    wm = random.Random(WATERMARK_SEED + seed)
+    if wm.random() < WATERMARK_SHARE:
+        img = workshop.watermark(img, wm)
+        spec["watermark"] = True
     if rng.random() < 0.5:  # half go through JPEG, like most photo archives
         buf = io.BytesIO()
         img.save(buf, "JPEG", quality=rng.randint(70, 95))
@@ -100,6 +119,19 @@ def _init_worker() -> None:
 
     torch.set_num_threads(1)
     _STEPS[:] = clipmod.pil_steps(PREPROCESS_CFG)
+
+
+def render_concept_photo(seed: int) -> tuple[dict, np.ndarray]:
+    """Concept calibration scene: every other seed watermarked."""
+    return render_photo(seed, stamp=seed % 2 == 1)
+
+
+def training_caption(spec: dict, rng: random.Random) -> str:
+    """A caption for a training scene; most watermarked scenes' captions say so."""
+    text = workshop.describe(spec, rng)
+    if spec.get("watermark") and rng.random() < WATERMARK_MENTION:
+        text += ", " + rng.choice(workshop.WATERMARK_PHRASES)
+    return text
 
 
 def render_many(first_seed: int, n: int, procs: int, fn=render_one) -> tuple[list[dict], np.ndarray]:
@@ -187,6 +219,72 @@ def calibrate(model, tokenizer, n: int, procs: int) -> dict:
     }
 
 
+def demo_probe(name: str = "watermark") -> tuple[dict, float, float | None]:
+    """The demo config's concept probe (sample_corpus/curate.toml), its temperature (0 = model scale)
+    and its match cosine (None = the model's agreement default)."""
+    import tomllib
+
+    data = tomllib.loads((ROOT / "sample_corpus" / "curate.toml").read_text(encoding="utf-8"))
+    section = data.get("concepts", {})
+    return section["probes"][name], float(section.get("temperature", 0.0)), section.get("match_cosine")
+
+
+def calibrate_concept(model, tokenizer, n: int, procs: int, agreement_threshold: float) -> dict:
+    """The demo watermark probe on held-out scenes, every other one watermarked: ROC AUC, the
+    score threshold maximising Youden's J, and TPR/FPR at the configured threshold, with the match
+    level the concepts stage uses (by default this model's agreement threshold). Also the
+    agreement of watermarked scenes with captions that do not mention the watermark."""
+    import torch
+    import torch.nn.functional as F
+
+    from curate.stages.concepts import concept_score
+
+    probe, temperature, match = demo_probe()
+    match = agreement_threshold if match is None else float(match)
+    specs, pixels = render_many(CONCEPT_SEED, n, procs, fn=render_concept_photo)
+    marked = np.array([bool(s.get("watermark")) for s in specs])
+    caps = [workshop.describe(spec, random.Random(CONCEPT_SEED + 7_000_000 + i)) for i, spec in enumerate(specs)]
+    model.eval()
+    with torch.inference_mode():
+        img = torch.cat([F.normalize(model.encode_image(to_input(pixels[i:i + 256])), dim=-1)
+                         for i in range(0, n, 256)])
+        txt = torch.cat([encode_text(model, tokenizer, caps[i:i + 256]) for i in range(0, n, 256)])
+        pe = encode_text(model, tokenizer, list(probe["prompts"]))
+        ce = encode_text(model, tokenizer, list(probe["counter_prompts"]))
+        scale = 1.0 / temperature if temperature > 0 else float(model.logit_scale.exp())
+    score = concept_score(img.numpy(), pe.numpy(), ce.numpy(), scale, match)
+    cos = (img * txt).sum(-1).numpy().astype(np.float64)
+    pos, neg = score[marked], score[~marked]
+    thr, tpr, fpr = youden_threshold(pos, neg)
+    cfg_thr = float(probe["threshold"])
+    return {
+        "concept": "watermark",
+        "n_scenes": n,
+        "auc": round(auc(pos, neg), 4),
+        "youden_threshold": round(thr, 4),
+        "youden_tpr": round(tpr, 4),
+        "youden_fpr": round(fpr, 4),
+        "configured_threshold": cfg_thr,
+        "tpr_at_configured": round(float(np.mean(pos >= cfg_thr)), 4),
+        "fpr_at_configured": round(float(np.mean(neg >= cfg_thr)), 4),
+        "score_median_watermarked": round(float(np.median(pos)), 4),
+        "score_median_clean": round(float(np.median(neg)), 4),
+        "logit_scale": round(scale, 3),
+        "match_cosine": match,
+        "agreement_median_watermarked": round(float(np.median(cos[marked])), 4),
+        "agreement_median_clean": round(float(np.median(cos[~marked])), 4),
+        "agreement_watermarked_below_threshold": round(float(np.mean(cos[marked] < agreement_threshold)), 4),
+        "method": (
+            f"{n} held-out scenes rendered by sample_corpus/workshop.py with seeds {CONCEPT_SEED}.."
+            f"{CONCEPT_SEED + n - 1}, every odd seed stamped with workshop.watermark, as 400-800 px JPEGs "
+            "decoded by the embed stage; score = the concepts stage's softmax mass on the watermark "
+            "prompts of sample_corpus/curate.toml against its counter-prompts and the match level; "
+            "agreement = cosine with a "
+            "caption of workshop.describe(spec), which never mentions the watermark"
+        ),
+    }
+
+
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--out", default=str(ROOT / "curate" / "models" / "demo"), help="output folder")
@@ -196,6 +294,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--lr", type=float, default=1e-3, help="peak AdamW learning rate")
     ap.add_argument("--threads", type=int, default=2, help="torch threads and render processes")
     ap.add_argument("--calib-scenes", type=int, default=2_000, help="held-out scenes for calibration")
+    ap.add_argument("--concept-scenes", type=int, default=1_000,
+                    help="held-out scenes (half watermarked) for the watermark probe's figures")
     ap.add_argument("--calibrate-only", action="store_true",
                     help="keep the weights in --out, redo the calibration and update the JSON")
     args = ap.parse_args(argv)
@@ -243,7 +343,7 @@ def main(argv: list[str] | None = None) -> int:
             order, pos = torch.randperm(len(specs), generator=gen), 0
         idx = order[pos:pos + args.batch].numpy()
         pos += args.batch
-        caps = [workshop.describe(specs[i], random.Random(CAPTION_SEED + step * args.batch + j))
+        caps = [training_caption(specs[i], random.Random(CAPTION_SEED + step * args.batch + j))
                 for j, i in enumerate(idx)]
         for g in opt.param_groups:
             g["lr"] = lr_at(step)
@@ -262,6 +362,8 @@ def main(argv: list[str] | None = None) -> int:
 
     cal = calibrate(model, tokenizer, args.calib_scenes, args.threads)
     print(f"calibration: {json.dumps(cal)}", flush=True)
+    concept = calibrate_concept(model, tokenizer, args.concept_scenes, args.threads, cal["threshold"])
+    print(f"concept calibration: {json.dumps(concept)}", flush=True)
 
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
@@ -276,12 +378,15 @@ def main(argv: list[str] | None = None) -> int:
         "weights": weights.name,
         "weights_sha256": sha,
         "calibration": cal,
+        "concept_calibration": concept,
         "training": {
             "script": "tools/train_demo_model.py",
             "loss": "CLIP contrastive loss (open_clip.ClipLoss), learnable temperature",
             "scenes": args.scenes, "steps": args.steps, "batch": args.batch, "lr": args.lr,
             "threads": args.threads, "seeds": {"train": TRAIN_SEED, "calibration": CALIB_SEED,
-                                               "captions": CAPTION_SEED, "torch": 0},
+                                               "captions": CAPTION_SEED, "watermark": WATERMARK_SEED,
+                                               "concept_calibration": CONCEPT_SEED, "torch": 0},
+            "watermark_share": WATERMARK_SHARE, "watermark_mention": WATERMARK_MENTION,
             "render_seconds": round(t_render, 1), "train_seconds": round(t_train, 1),
             "torch": torch.__version__, "open_clip": open_clip.__version__,
             "weights_dtype": "float16", "final_loss": round(float(loss.item()), 4),
@@ -304,6 +409,9 @@ def recalibrate(out: Path, args: argparse.Namespace) -> int:
     tokenizer = open_clip.SimpleTokenizer(context_length=meta["model_cfg"]["text_cfg"]["context_length"])
     meta["calibration"] = calibrate(model, tokenizer, args.calib_scenes, args.threads)
     print(f"calibration: {json.dumps(meta['calibration'])}", flush=True)
+    meta["concept_calibration"] = calibrate_concept(model, tokenizer, args.concept_scenes, args.threads,
+                                                    meta["calibration"]["threshold"])
+    print(f"concept calibration: {json.dumps(meta['concept_calibration'])}", flush=True)
     cfg_path.write_text(json.dumps(meta, indent=2) + "\n", encoding="utf-8")
     return 0
 

@@ -56,6 +56,10 @@ _KS = np.exp(np.linspace(np.log(1.25), np.log(8.0), 60))
 # Colours a JPEG decoder leaves where scan data is missing: zeroed coefficients decode to mid
 # grey (Pillow/libjpeg), a zeroed YCbCr buffer converts to green (other decoders; from memory).
 FILL_COLOURS = ((128, 128, 128), (0, 135, 0))
+# Below this JPEG quality (IJG scale) flat areas quantise to exactly one colour and edges snap to
+# the block grid, so fill colours and seams alone are not read as damage (common practice: the
+# IJG scale's low end, where blocking is plainly visible).
+COARSE_JPEG_QUALITY = 30.0
 # A block-boundary seam: a luma step at least SEAM_RATIO times the row steps beside it plus
 # SEAM_MIN_STEP levels; its cover is the share of the width with such steps, beyond the typical
 # boundary's (set on the tuning photos in bench/quality_checks.py).
@@ -614,7 +618,17 @@ def quality_checks(m: dict[str, Any], cfg: QualityConfig) -> list[dict]:
     rec("image_upscaled", factor, cfg.max_upscale_factor, "<", "x", up)
 
     fill = _f(m, "decoder_fill_share") or 0.0
+    q = _f(m, "jpeg_quality")
     seam = (_f(m, "seam_after_share") or 0.0) if (_f(m, "seam_cover") or 0.0) >= cfg.min_seam_cover else 0.0
+    # Heavy quantisation turns a plain backdrop into blocks of exactly one colour, the decoder's
+    # fill colour among them, and snaps every object edge onto the block grid; without the
+    # decoder's word that data was missing, neither is evidence of damage in such a file
+    # (tests/test_quality_measures.py: a grey backdrop at quality 12). `min_jpeg_quality` is the
+    # check for such files.
+    quiet = not m.get("truncated") and not m.get("damage_warnings")
+    coarse = quiet and q is not None and q < COARSE_JPEG_QUALITY
+    if coarse:
+        fill = seam = 0.0
     measured = m.get("decoder_fill_share") is not None or m.get("seam_cover") is not None
     share = max(fill, seam) if measured else None
     notes = []
@@ -622,10 +636,10 @@ def quality_checks(m: dict[str, Any], cfg: QualityConfig) -> list[dict]:
         notes.append("data ended early")
     if m.get("damage_warnings"):
         notes.append(f"{int(m['damage_warnings'])} decoder warning(s)")
-    notes.append(f"decoder fill {fill:.3f}, after a block seam {seam:.3f}")
+    notes.append(f"decoder fill {fill:.3f}" + f", after a block seam {seam:.3f}"
+                 + (f" (neither counted at JPEG quality {q:.0f})" if coarse else ""))
     rec("image_garbled", share, cfg.max_garbled_share, "<=", "share", "; ".join(notes))
 
-    q = _f(m, "jpeg_quality")
     if cfg.min_jpeg_quality > 0 and q is not None:
         rec("image_overcompressed", q, cfg.min_jpeg_quality, ">=", None,
             "IJG scale" + ("" if m.get("jpeg_quality_exact") else ", nearest; other encoder"))

@@ -12,6 +12,8 @@ its function. The declaration says:
   whether each reaches the ledger and the output shards. A column can be
   `transient` (the decoded image): it lives only inside one per-shard pass.
 - `checks`: the reason codes it can emit, with default actions.
+- `actions`: per-code default actions its own config sets (a probe entry's
+  action); `[decide] actions` still overrides them.
 - `kind`: "shard" (a pure function of one shard's rows, any subset of them) or
   "global" (sees every sample at once); `phase`: where it sits in the run
   (`PHASES`); `alive_only`: it sees only samples that no earlier check
@@ -138,6 +140,9 @@ class Stage:
     cache_key: tuple[str, ...] = ()
     # Extra activity condition beyond the section's `enabled` flag.
     active_if: Callable[[ConfigView], bool] | None = None
+    # Per-code default actions the stage's own config sets (e.g. `probe:<name>` -> its entry's action);
+    # `[decide] actions` still overrides them (curate.decide.actions_for).
+    actions: Callable[[ConfigView], dict[str, str]] | None = None
     doc: str = ""
 
     @property
