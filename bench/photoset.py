@@ -4,7 +4,7 @@ The photos come from scikit-image (`skimage.data`), scikit-learn (`load_sample_i
 matplotlib's sample data, so the near-duplicate quality checks run offline on pictures nobody here
 made. Every variant is written to bytes and decoded back exactly as the pipeline's inspect stage
 decodes (JPEG draft mode included), so the hashes seen here are the hashes a run would see.
-Used by bench/neardup_quality.py and tests/test_neardup.py.
+Used by bench/neardup_quality.py, tests/test_neardup.py and tests/test_neardup_adversarial.py.
 """
 from __future__ import annotations
 
@@ -178,6 +178,61 @@ TRANSFORMS: dict[str, dict[str, Callable[[Image.Image, random.Random], bytes]]] 
     },
     "stamp": {"stamp_box_12": _stamp("box", 0.12), "stamp_box_18": _stamp("box", 0.18), "watermark_text": _stamp("text", 0.2)},
 }
+
+
+def _crop_share(img: Image.Image, share: float, mode: str, rng: random.Random) -> Image.Image:
+    """Cut ``share`` of each side: 'centre' half from each end, 'one' all from one random edge."""
+    w, h = img.size
+    if mode == "centre":
+        fr = [share / 2] * 4
+    else:
+        fr = [0.0] * 4
+        fr[rng.randrange(4)] = share
+    return img.crop((round(w * fr[0]), round(h * fr[1]), w - round(w * fr[2]), h - round(h * fr[3])))
+
+
+# Mirror images and turns (Pillow's Image.transpose; turns are counter-clockwise) and crops of 10-30%
+# of a side, alone and combined: the copies the default views were not built for, measured on their
+# own (bench/neardup_quality.py). Kept apart from TRANSFORMS, whose every edit the defaults are held to.
+HARD_TURNS = {"identity": None, "mirror": "FLIP_LEFT_RIGHT", "rot90": "ROTATE_90", "rot180": "ROTATE_180",
+              "rot270": "ROTATE_270"}
+HARD_CROPS = {"none": None, **{f"crop_{m}_{p}": (p / 100, m) for p in (10, 20, 30) for m in ("one", "centre")}}
+
+
+def _hard_edit(turn: str, crop: str) -> Callable[[Image.Image, random.Random], bytes]:
+    def edit(img: Image.Image, rng: random.Random) -> bytes:
+        out = img if HARD_CROPS[crop] is None else _crop_share(img, *HARD_CROPS[crop], rng)
+        if HARD_TURNS[turn]:
+            out = out.transpose(getattr(Image.Transpose, HARD_TURNS[turn]))
+        return _encode(out, "PNG")
+
+    return edit
+
+
+def hard_edit_name(turn: str, crop: str) -> str:
+    """The edit's name: the turn, the crop, or both joined by '+'."""
+    return "+".join(x for x in (turn if turn != "identity" else "", crop if crop != "none" else "") if x)
+
+
+HARD_EDITS: dict[str, dict[str, Callable[[Image.Image, random.Random], bytes]]] = {
+    turn: {hard_edit_name(turn, crop): _hard_edit(turn, crop) for crop in HARD_CROPS if (turn, crop) != ("identity", "none")}
+    for turn in HARD_TURNS
+}
+
+
+def hard_variants(name: str, img: Image.Image, seed: int = 0, turns: tuple[str, ...] | None = None,
+                  crops: tuple[str, ...] | None = None) -> list[tuple[str, str, bytes]]:
+    """(turn, edit, bytes) for the HARD_EDITS of the given turns and crops (default: all);
+    deterministic per photo name and seed."""
+    out = []
+    for turn in turns or tuple(HARD_TURNS):
+        for crop in crops or tuple(HARD_CROPS):
+            if (turn, crop) == ("identity", "none"):
+                continue
+            ename = hard_edit_name(turn, crop)
+            rng = random.Random(f"{seed}:{name}:{ename}")
+            out.append((turn, ename, HARD_EDITS[turn][ename](img, rng)))
+    return out
 
 
 def original_bytes(img: Image.Image) -> bytes:

@@ -88,7 +88,9 @@ def _cmd_explain(a: argparse.Namespace) -> int:
         print(f"\nnear-duplicate group {_e(info['group_id'])} ({len(info['group'])} members):")
         for m in info["group"]:
             mark = "kept   " if m["kept"] else "dropped"
-            d = "" if m["dup_of"] is None else (f" copy of {m['dup_of']} by {m['dup_signal']} at {m['dup_distance']:g}"
+            how = f" ({m['dup_transform']})" if m.get("dup_transform") else ""
+            d = "" if m["dup_of"] is None else (f" copy of {m['dup_of']} by {m['dup_signal']}{how} at "
+                                                f"{m['dup_distance']:g}"
                                                 + (f"; kept copy wins on {m['keep_reason']}" if m.get("keep_reason")
                                                    else ""))
             print(f"  {mark} {_e(m['sample_id'])} {_e(m['source'])} {m['width']}x{m['height']}{_e(d)}")

@@ -10,8 +10,9 @@ Five kinds of set, told apart by `detect_kind`:
 A set may also be an fsspec URL (`s3://`, `gs://`, `memory://`, ...; `file://` is a local path): it is
 listed and read through its store, streaming, never copied to local disk.
 
-Each image gets the same multi-crop perceptual codes the pipeline computes (same decode as
-`inspect`, same `[hashes]` settings), optionally a CLIP embedding. Both are cached per set in a
+Each image gets the same multi-view perceptual codes the pipeline computes (same decode as
+`inspect`, same `[hashes]` settings, curate.similarity.image_codes), optionally a CLIP embedding.
+Both are cached per set in a
 Parquet file keyed by the image's file path + size + mtime and by the settings, so a second
 leakcheck or run against an unchanged benchmark reads no image at all.
 """
@@ -28,6 +29,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from . import similarity
 from .errors import InputError
 
 log = logging.getLogger(__name__)
@@ -353,12 +355,29 @@ class HashSettings:
     def key(self) -> dict:
         import dataclasses
 
-        from .stages import hashes as hmod
-
         # Only what changes the pixels hashed or the codes: the decode's draft size and the
-        # hashes section; the inspect size checks do not matter here.
+        # code settings; the inspect size checks do not matter here.
         return {"draft_short_side": self.inspect.draft_short_side, "max_pixels": self.inspect.max_pixels,
-                "hashes": dataclasses.asdict(self.hashes), "hashes_version": hmod.VERSION}
+                "codes": dataclasses.asdict(code_settings(self.hashes)), "codes_version": similarity.codes.VERSION}
+
+    def code_settings(self) -> similarity.CodeSettings:
+        return code_settings(self.hashes)
+
+
+def code_settings(hcfg: Any) -> similarity.CodeSettings:
+    """The code settings of a `[hashes]` section (its fields of the same names)."""
+    import dataclasses
+
+    if type(hcfg) is similarity.CodeSettings:
+        return hcfg
+    names = {f.name for f in dataclasses.fields(similarity.CodeSettings)}
+    kw = {k: getattr(hcfg, k) for k in names if hasattr(hcfg, k)}
+    # A section from before transforms and check codes makes the codes it always made: `flip`
+    # meant the mirror view, and there was no check code.
+    if "transforms" not in kw:
+        kw["transforms"] = ["mirror"] if getattr(hcfg, "flip", False) else []
+    kw.setdefault("check", "")
+    return similarity.CodeSettings(**{k: list(v) if isinstance(v, (list, tuple)) else v for k, v in kw.items()})
 
 
 def default_settings(config: Any = None) -> HashSettings:
@@ -387,15 +406,11 @@ def codes_of_bytes(data: bytes | Exception, settings: HashSettings) -> tuple[np.
 
 def image_codes_for(rgb: Any, hcfg: Any) -> np.ndarray:
     """The codes the `[hashes]` section makes for one decoded image (the pipeline's own call)."""
-    from .stages import hashes as hmod
-
-    return np.asarray(hmod.image_codes(rgb, hcfg), dtype=np.uint64)
+    return similarity.image_codes(rgb, code_settings(hcfg))
 
 
 def codes_per_image(hcfg: Any) -> int:
-    from .stages import hashes as hmod
-
-    return hmod.variants(hcfg)
+    return similarity.code_count(code_settings(hcfg))
 
 
 def codes_matrix(table: pa.Table, hcfg: Any) -> tuple[np.ndarray | None, np.ndarray]:
@@ -421,6 +436,26 @@ class SetCodes:
     ok: np.ndarray
     problems: list[str | None]
     computed: int  # entries hashed now (the rest came from the cache)
+    settings: similarity.CodeSettings | None = None  # what made the codes (None: one code per view, all identity)
+
+    @property
+    def views(self) -> list[similarity.View] | None:
+        return None if self.settings is None else similarity.views(self.settings)
+
+    @property
+    def identity(self) -> int | None:
+        """How many leading views are identity views (None: all)."""
+        return None if self.settings is None else similarity.identity_count(self.settings)
+
+    @property
+    def main(self) -> np.ndarray:
+        """(n, views) main codes."""
+        return self.codes if self.settings is None else similarity.split_codes(self.codes, self.settings)[0]
+
+    @property
+    def checks(self) -> np.ndarray | None:
+        """(n, views) check codes, or None."""
+        return None if self.settings is None else similarity.split_codes(self.codes, self.settings)[1]
 
 
 def _cache_file(cache_dir: str, root: str, what: str, settings_key: Any) -> Path:
@@ -498,7 +533,7 @@ def set_codes(images: ImageSet, settings: HashSettings, *, cache_dir: str | None
         if v is not None and len(v) == k:
             codes[i] = np.asarray(v, dtype=np.uint64)
             ok[i] = True
-    return SetCodes(images, codes, ok, problems, computed)
+    return SetCodes(images, codes, ok, problems, computed, settings.code_settings())
 
 
 def _map_chunks(images: ImageSet, idx: list[int], fn: Callable, args: tuple, workers: int) -> list:
@@ -580,17 +615,5 @@ def set_embeddings(images: ImageSet, embed_cfg: Any, *, cache_dir: str | None = 
     return SetEmbeddings(images, emb, ok, computed)
 
 
-def cross_cosine(a: np.ndarray, b: np.ndarray, threshold: float, block: int = 4096) -> tuple[np.ndarray, ...]:
-    """Every (i, j) with cosine(a_i, b_j) >= threshold, exactly (blocked matrix products)."""
-    ii, jj, ss = [], [], []
-    a = np.ascontiguousarray(a, dtype=np.float32)
-    b = np.ascontiguousarray(b, dtype=np.float32)
-    for s in range(0, a.shape[0], block):
-        sim = a[s:s + block] @ b.T
-        i, j = np.nonzero(sim >= threshold)
-        ii.append(i + s)
-        jj.append(j)
-        ss.append(sim[i, j])
-    if not ii:
-        return np.empty(0, np.int64), np.empty(0, np.int64), np.empty(0, np.float32)
-    return np.concatenate(ii).astype(np.int64), np.concatenate(jj).astype(np.int64), np.concatenate(ss)
+# Split's eval-set check still calls this name; the search itself is curate.similarity's.
+cross_cosine = similarity.cross_cosine

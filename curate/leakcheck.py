@@ -1,9 +1,10 @@
 """leakcheck: prove two image sets share no near-duplicate (or find the pairs that leak).
 
 A and B may each be a folder, a manifest, a tar set, a shard set or a curate output
-(curate.imagesets). Every image gets the pipeline's multi-crop perceptual codes; the search is
-exact (multi-index Hamming range search, curate.hashing.sample_cross_pairs, equal to brute force),
-so "no pairs" means no pair within the radius exists, not that none was found by sampling.
+(curate.imagesets). Every image gets the pipeline's multi-view perceptual codes (crops, and the
+mirror or turns the settings ask for); the search is exact (multi-index Hamming range search,
+curate.similarity.cross_set_pairs, equal to brute force), so "no pairs" means no pair within the
+radius exists, not that none was found by sampling. Each pair names the transform that matched.
 With a semantic cosine threshold and a CLIP model, pairs of near-identical embeddings are
 reported as well.
 """
@@ -18,7 +19,7 @@ from typing import Any
 
 import numpy as np
 
-from . import imagesets
+from . import imagesets, similarity
 from .errors import ConfigError, InputError
 
 # Pairs drawn in the HTML page (the JSON and the return value always hold every pair).
@@ -61,20 +62,10 @@ def leakcheck(a: str | Path, b: str | Path, *, radius: int | None = None, semant
         raise ConfigError(f"radius must be 0..64 bits, got {r}", key="radius")
     cache = str(cache_dir) if cache_dir else None
     timings: dict[str, float] = {}
-    sets, codes = [], []
-    for which, path in (("a", a), ("b", b)):
-        t = time.perf_counter()
-        s = imagesets.list_set(path)
-        if len(s) == 0:
-            raise InputError(f"set {which.upper()} ({path}) holds no images; nothing to compare")
-        timings[f"list_{which}"] = time.perf_counter() - t
-        t = time.perf_counter()
-        sc = imagesets.set_codes(s, settings, cache_dir=cache, workers=workers)
-        timings[f"hash_{which}"] = time.perf_counter() - t
-        sets.append(s)
-        codes.append(sc)
+    sets, codes = _hash_sets(a, b, settings, cache, workers, timings)
     t = time.perf_counter()
-    pairs = cross_set_pairs(codes[0], codes[1], r)
+    check_r = getattr(getattr(cfg, "neardup", None), "check_radius", similarity.CHECK_RADIUS)
+    pairs = cross_set_pairs(codes[0], codes[1], r, int(check_r))
     timings["search"] = time.perf_counter() - t
     if semantic:
         t = time.perf_counter()
@@ -103,6 +94,23 @@ def leakcheck(a: str | Path, b: str | Path, *, radius: int | None = None, semant
     return out
 
 
+def _hash_sets(a: str | Path, b: str | Path, settings: Any, cache: str | None, workers: int,
+               timings: dict[str, float]) -> tuple[list[imagesets.ImageSet], list[imagesets.SetCodes]]:
+    """List and hash both sets (codes cached in `cache`), timing each step into `timings`."""
+    sets, codes = [], []
+    for which, path in (("a", a), ("b", b)):
+        t = time.perf_counter()
+        s = imagesets.list_set(path)
+        if len(s) == 0:
+            raise InputError(f"set {which.upper()} ({path}) holds no images; nothing to compare")
+        timings[f"list_{which}"] = time.perf_counter() - t
+        t = time.perf_counter()
+        codes.append(imagesets.set_codes(s, settings, cache_dir=cache, workers=workers))
+        timings[f"hash_{which}"] = time.perf_counter() - t
+        sets.append(s)
+    return sets, codes
+
+
 def _config(config: str | Path | None) -> Any:
     if config is None:
         return None
@@ -129,19 +137,17 @@ def _unreadable(sc: imagesets.SetCodes) -> list[dict]:
             for i in np.nonzero(~sc.ok)[0].tolist()]
 
 
-def cross_set_pairs(a: imagesets.SetCodes, b: imagesets.SetCodes, radius: int) -> list[dict]:
-    """Exact cross-set search over the images that hashed; distance = min over crop variants."""
-    from .hashing import sample_cross_pairs
-
-    ra, rb = np.nonzero(a.ok)[0], np.nonzero(b.ok)[0]
-    if not ra.size or not rb.size:
-        return []
-    p = sample_cross_pairs(a.codes[ra], b.codes[rb], radius)
+def cross_set_pairs(a: imagesets.SetCodes, b: imagesets.SetCodes, radius: int,
+                    check_radius: int = similarity.CHECK_RADIUS) -> list[dict]:
+    """Exact cross-set search over the images that hashed; distance = closest allowed view pair
+    (whose check codes pass, where the codes have them), `transform` = what takes the picture in A
+    to the one in B ("identity", "mirror", "rot90", ...)."""
+    p = similarity.cross_set_pairs(a.main, b.main, radius, a.identity, a.ok, b.ok, a.checks, b.checks, check_radius)
     out = []
-    for i, j, d in zip(np.asarray(p[0]).tolist(), np.asarray(p[1]).tolist(), np.asarray(p[2]).tolist()):
-        ia, jb = int(ra[i]), int(rb[j])
-        out.append({"a": a.images.names[ia], "b": b.images.names[jb], "distance": int(d), "signal": "phash",
-                    "a_path": a.images.refs[ia], "b_path": b.images.refs[jb]})
+    for i, j, d, va, vb in zip(*(np.asarray(x).tolist() for x in p)):
+        transform = similarity.matched_transform(a.views, va, vb) if a.views is not None else "identity"
+        out.append({"a": a.images.names[i], "b": b.images.names[j], "distance": int(d), "transform": transform,
+                    "signal": "phash", "a_path": a.images.refs[i], "b_path": b.images.refs[j]})
     return out
 
 
@@ -151,7 +157,7 @@ def _semantic_pairs(sets: list, embed_cfg: Any, threshold: float, cache: str | N
     ra, rb = np.nonzero(ea.ok)[0], np.nonzero(eb.ok)[0]
     if not ra.size or not rb.size:
         return []
-    ii, jj, ss = imagesets.cross_cosine(ea.emb[ra], eb.emb[rb], threshold)
+    ii, jj, ss = similarity.cross_cosine(ea.emb[ra], eb.emb[rb], threshold)
     have = {(p["a_path"], p["b_path"]) for p in seen}
     out = []
     for i, j, s in zip(ii.tolist(), jj.tolist(), ss.tolist()):
@@ -160,7 +166,8 @@ def _semantic_pairs(sets: list, embed_cfg: Any, threshold: float, cache: str | N
         if key in have:
             continue
         out.append({"a": sets[0].names[ia], "b": sets[1].names[jb], "distance": round(1.0 - float(s), 6),
-                    "cosine": round(float(s), 6), "signal": "semantic", "a_path": key[0], "b_path": key[1]})
+                    "cosine": round(float(s), 6), "transform": None, "signal": "semantic", "a_path": key[0],
+                    "b_path": key[1]})
     return out
 
 
@@ -207,6 +214,8 @@ def write_html(path: str | Path, result: dict, sets: list[imagesets.ImageSet]) -
     rows = []
     for p in shown:
         dist = f"cosine {p['cosine']}" if p["signal"] == "semantic" else f"{p['distance']} bits"
+        if p.get("transform") not in (None, "identity"):
+            dist += f" ({p['transform']})"
         cells = []
         for side, thumbs in (("a", ta), ("b", tb)):
             src = thumbs.get(p[f"{side}_path"], "")

@@ -133,7 +133,7 @@ def explain(out_dir: str | Path, key: str, helps: dict[str, str] | None = None) 
     if row.get("group_id") is not None:
         g = ledger.filter(pc.equal(ledger.column("group_id"), row["group_id"]))
         cols = [c for c in ("sample_id", "source", "kept", "width", "height", "agreement", "dup_of", "dup_distance",
-                            "dup_signal", "keep_reason") if c in ledger.column_names]
+                            "dup_signal", "dup_transform", "keep_reason") if c in ledger.column_names]
         group = g.select(cols).to_pylist() if g.num_rows > 1 else []
     out = {k: row[k] for k in row if k != "checks"}
     out["checks"] = checks

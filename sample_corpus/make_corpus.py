@@ -24,7 +24,7 @@ from pathlib import Path
 from PIL import Image, ImageDraw, ImageFilter, ImageFont, ImageOps
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from curate.hashing import min_distance  # noqa: E402
+from curate import similarity  # noqa: E402
 
 import workshop  # noqa: E402
 
@@ -40,9 +40,13 @@ ORIGINAL_SIZES = ((800, 600), (600, 800), (768, 576), (720, 720), (800, 640), (6
 
 CSV_FIELDS = ("source", "expect", "reason", "group", "width", "height", "note")
 
-# Distinct scenes are re-drawn until their perceptual codes (the pipeline's own multi-view pHash,
-# curate.hashing with the default [hashes] settings, closest views) are at least this many bits
-# from every scene drawn before, so no two unrelated samples look like near-duplicates.
+# Distinct scenes are re-drawn until their perceptual codes (multi-view pHash of the crops, no
+# transformed views or check codes: DRAW_CODES, closest views) are at least this many bits from
+# every scene drawn before, so no two unrelated samples look like near-duplicates. The draw and
+# check_hashes keep these settings whatever the pipeline's defaults, so the demo's bytes never
+# change with them. Neither guards the pipeline's transformed (mirror) views: drawn under them
+# (SEED 2011, mirror of every crop and of the whole picture only), the check still found two
+# unrelated samples 10 bits apart.
 # Common practice: up to about 10 bits marks a likely variant (see shared FACTS); the default
 # neardup radius is 8.
 MIN_DISTINCT_BITS = 13
@@ -50,6 +54,9 @@ MIN_DISTINCT_BITS = 13
 MAX_VARIANT_BITS = 10
 # Every planted near-duplicate stays within this many bits of its original (the neardup radius).
 CLOSE_VARIANT_BITS = 8
+
+
+DRAW_CODES = similarity.CodeSettings(transforms=[], check="")
 
 
 @dataclass
@@ -586,10 +593,13 @@ def build() -> list[Sample]:
 
 
 def codes(img: Image.Image):
-    """The pipeline's own perceptual codes of an image (default [hashes] settings)."""
-    from curate.stages.hashes import HashesConfig, image_codes
+    """The demo's own perceptual codes of an image (DRAW_CODES)."""
+    return similarity.image_codes(img, DRAW_CODES)
 
-    return image_codes(img, HashesConfig())
+
+def min_distance(a, b) -> int:
+    """Closest pair of two samples' DRAW_CODES views."""
+    return similarity.min_distance(a, b)
 
 
 def decoded_hash(data: bytes):

@@ -21,7 +21,7 @@ PKG = ROOT / "curate"
 LAYERS: list[tuple[str, ...]] = [
     ("curate", "curate.errors", "curate.checks", "curate.progress", "curate.terminal", "curate.clip_tokens"),
     ("curate.config", "curate.workdir", "curate.plugins", "curate.layout"),
-    ("curate.sources", "curate.imaging", "curate.similarity", "curate.hashing", "curate.models", "curate.pii",
+    ("curate.sources", "curate.imaging", "curate.similarity", "curate.models", "curate.pii",
      "curate.ledger", "curate.report", "curate.probes"),
     ("curate.stages", "curate.imagesets"),
     ("curate.decide",),

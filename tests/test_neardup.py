@@ -11,7 +11,7 @@ import numpy as np
 import pyarrow as pa
 import pytest
 
-from curate import hashing
+from curate import similarity
 from curate.errors import ConfigError
 from curate.stages import REGISTRY, neardup
 from curate.stages import hashes as hashes_mod
@@ -28,9 +28,10 @@ def _run(table: pa.Table, *sets: str) -> pa.Table:
     return stage_call("neardup", table, *sets)
 
 
-def _table(rows: list[dict], emb: np.ndarray | None = None) -> pa.Table:
-    """A neardup input table: rows with sample_id, bytes or sha, image or codes, size, flags..."""
-    hcfg = hashes_mod.HashesConfig()
+def _table(rows: list[dict], emb: np.ndarray | None = None, hashes: str | None = None) -> pa.Table:
+    """A neardup input table: rows with sample_id, bytes or sha, image or codes, size, flags...
+    ``hashes``: a --set of the [hashes] section the codes are made with."""
+    hcfg = pipeline_config(*([hashes] if hashes else [])).hashes
     col = hashes_mod.CODES
     cols = collections.defaultdict(list)
     for r in rows:
@@ -47,7 +48,7 @@ def _table(rows: list[dict], emb: np.ndarray | None = None) -> pa.Table:
             cols[col].append(hashes_mod.image_codes(img, hcfg) if img is not None else None)
         cols["agreement"].append(r.get("agreement"))
         cols["flags_before"].append(r.get("flags", []))
-    (codes_col,) = hashes_mod.columns(REGISTRY["hashes"].view(pipeline_config()))
+    (codes_col,) = hashes_mod.columns(REGISTRY["hashes"].view(pipeline_config(*([hashes] if hashes else []))))
     fields = [pa.field("sample_id", pa.string()), pa.field("source", pa.string()), pa.field("decoded", pa.bool_()),
               pa.field("width", pa.int32()), pa.field("height", pa.int32()), pa.field("sha256", pa.string()),
               pa.field(codes_col.name, codes_col.type), pa.field("agreement", pa.float32()),
@@ -112,13 +113,15 @@ def test_every_edit_lands_in_its_originals_group(photo_rows, photo_groups, famil
 def test_plain_phash_misses_crops_and_stamps(photo_rows):
     # Why the views exist: one whole-picture pHash puts 8% crops and corner stamps far from the
     # original (Zauner 2010 measured pHash under compression and scaling, not crops).
-    plain = dict(scales=(1.0,), side_scale=0.0, corner_mask=0.0, work_size=0)
+    plain = similarity.CodeSettings(scales=[1.0], side_scale=0.0, corner_mask=0.0, transforms=[], check="",
+                                    work_size=0)
     by = {r["id"]: r for r in photo_rows}
-    d = hashing.min_distance(hashing.image_codes(by["astronaut/crop_even_8"]["image"], **plain),
-                             hashing.image_codes(by["astronaut/original"]["image"], **plain))
+    crop, orig = by["astronaut/crop_even_8"]["image"], by["astronaut/original"]["image"]
+    d = similarity.min_distance(similarity.image_codes(crop, plain), similarity.image_codes(orig, plain))
     assert d > neardup.NeardupConfig().radius
-    d_views = hashing.min_distance(hashing.image_codes(by["astronaut/crop_even_8"]["image"]),
-                                   hashing.image_codes(by["astronaut/original"]["image"]))
+    s = hashes_mod.code_settings(hashes_mod.HashesConfig())
+    (mc, cc), (mo, co) = (similarity.split_codes(similarity.image_codes(x, s), s) for x in (crop, orig))
+    d_views = similarity.min_distance(mc, mo, similarity.identity_count(s), cc, co)
     assert d_views <= neardup.NeardupConfig().radius
 
 
@@ -136,6 +139,40 @@ def test_keeper_is_the_largest_copy_and_others_point_to_it(photo_groups):
         if r["dup_of"] is not None:
             assert r["dup_of"] == keepers[0]["sample_id"] and r["dup_signal"] in ("phash", "sha256")
             assert keepers[0]["sample_id"] in c["detail"]
+
+
+def test_copies_name_how_they_relate_to_the_keeper(photo_rows, photo_groups):
+    # Photometric edits keep the geometry: the same view of both matched. An 8% crop per side is
+    # matched by the kept picture's 84% crop (Zauner 2010 measured pHash under compression and
+    # scaling; crops need the crop views).
+    for r in photo_rows:
+        g = photo_groups[r["id"]]
+        if r["family"] in ("jpeg", "blur", "brightness", "contrast") and g["dup_of"] is not None:
+            assert g["dup_transform"] in ("identity", "crop") and g["dup_signal"] in ("phash", "sha256"), r["id"]
+            assert g["dup_transform"] == "identity" or g["dup_signal"] == "phash"
+    assert photo_groups["astronaut/crop_even_8"]["dup_transform"] == "crop"
+    assert "crop" in photo_groups["astronaut/crop_even_8"]["neardup.checks"][0]["detail"]
+
+
+@pytest.mark.parametrize("transpose,name", [("FLIP_LEFT_RIGHT", "mirror"), ("ROTATE_180", "rot180"),
+                                            ("ROTATE_90", "rot90"), ("FLIP_TOP_BOTTOM", None)])
+def test_mirrored_and_turned_copies_are_found_and_named(transpose, name):
+    # No perceptual hash survives a flip (Zauner 2010): the transformed views find the copy, and the
+    # ledger names the transform. A flip upside down is not among the configured transforms.
+    from PIL import Image
+
+    orig = photoset.decode_like_inspect(photoset.original_bytes(photoset.load_photo("coffee")))
+    copy = orig.transpose(getattr(Image.Transpose, transpose)).resize((orig.width * 3 // 4, orig.height * 3 // 4)
+                                                                       if transpose != "ROTATE_90" else
+                                                                       (orig.height * 3 // 4, orig.width * 3 // 4))
+    rows = [{"id": "orig", "image": orig}, {"id": "copy", "image": copy}]
+    out = _by_id(_run(_table(rows, hashes='hashes.transforms=["mirror", "rot90", "rot180", "rot270"]'),
+                      'hashes.transforms=["mirror", "rot90", "rot180", "rot270"]'))
+    if name is None:
+        assert out["copy"]["dup_of"] is None
+        return
+    assert out["copy"]["dup_of"] == "orig" and out["copy"]["dup_transform"] == name
+    assert out["copy"]["dup_distance"] <= neardup.NeardupConfig().radius
 
 
 # ----------------------------------------------------------------------------- keeper rule
@@ -197,16 +234,30 @@ def test_exact_bytes_group_without_codes():
     assert out["r"]["group_size"] == 1
 
 
-def test_chained_copies_share_one_group():
-    # a-b and b-c within the radius, a-c beyond it: union-find puts all three together.
+def test_chained_copies_do_not_share_one_group():
+    # a-b and b-c within the radius, a-c beyond it. Union of pairs would put all three together
+    # (the chaining a transitive closure gives); the leader rule keeps every member within the
+    # radius of its own kept sample: a (most pixels) keeps b, and c, 16 bits from a, is kept alone.
     a = 0
     b = (1 << 8) - 1  # 8 bits from a
     c = b | (((1 << 8) - 1) << 8)  # 8 bits from b, 16 from a
     k = hashes_mod.variants(hashes_mod.HashesConfig())
     rows = [{"id": i, "codes": [v] * k, "width": w, "height": w} for i, v, w in (("a", a, 500), ("b", b, 400), ("c", c, 300))]
     out = _by_id(_run(_table(rows)))
-    assert {out[i]["group_id"] for i in "abc"} == {"a"}
-    assert out["c"]["dup_distance"] == 16  # distance to the keeper, past the radius via b
+    assert out["b"]["group_id"] == "a" and out["b"]["dup_distance"] == 8
+    assert out["c"]["group_id"] == "c" and out["c"]["dup_of"] is None and out["a"]["group_size"] == 2
+
+
+def test_the_keeper_claims_first_even_against_a_closer_chain():
+    # c is 8 bits from b and 16 from a; b (best rank) is within 8 of both a and c. The leader rule
+    # visits b first: it claims a and c, so the group is whole and every member is near b.
+    b = (1 << 8) - 1
+    a, c = 0, b | (((1 << 8) - 1) << 8)
+    k = hashes_mod.variants(hashes_mod.HashesConfig())
+    rows = [{"id": i, "codes": [v] * k, "width": w, "height": w} for i, v, w in (("a", a, 400), ("b", b, 500), ("c", c, 300))]
+    out = _by_id(_run(_table(rows)))
+    assert {out[i]["group_id"] for i in "abc"} == {"b"} and out["b"]["group_size"] == 3
+    assert out["a"]["dup_distance"] == 8 and out["c"]["dup_distance"] == 8
 
 
 def test_semantic_links_need_embeddings_and_the_threshold():
@@ -221,6 +272,24 @@ def test_semantic_links_need_embeddings_and_the_threshold():
     assert out["w"]["group_size"] == 1
     out = _by_id(_run(_table(rows, emb=e), "neardup.semantic=false"))
     assert out["v"]["group_size"] == 1
+
+
+def test_semantic_links_reach_every_copy_of_the_same_file():
+    # p and q are the same file (same bytes, same embedding); r is a larger copy by embedding only.
+    # The search runs once per file, but the leader rule needs r linked to both: r (most pixels)
+    # claims p and q, so no copy is left as a keeper of its own.
+    rng = np.random.default_rng(1)
+    e = rng.standard_normal((3, 32)).astype(np.float32)
+    e[1] = e[0]
+    e[2] = e[0] + 0.01 * rng.standard_normal(32)
+    e /= np.linalg.norm(e, axis=1, keepdims=True)
+    rows = [{"id": "p", "sha": "aa" * 32, "codes": _codes(1), "width": 100, "height": 100},
+            {"id": "q", "sha": "aa" * 32, "codes": _codes(1), "width": 100, "height": 100},
+            {"id": "r", "sha": "bb" * 32, "codes": _codes(2), "width": 200, "height": 200}]
+    out = _by_id(_run(_table(rows, emb=e)))
+    assert out["p"]["dup_of"] == "r" and out["q"]["dup_of"] == "r" and out["r"]["group_size"] == 3
+    assert out["p"]["dup_signal"] == out["q"]["dup_signal"] == "embedding"
+    assert out["q"]["dup_transform"] is None
 
 
 def test_empty_and_all_undecoded():
@@ -238,9 +307,15 @@ def test_registration_and_config():
     st = REGISTRY["neardup"]
     assert st.kind == "global" and st.checks[0].code == "duplicate" and st.checks[0].action == "drop"
     assert "hashes" in st.sections and st.alive_only
-    cfg = pipeline_config("neardup.radius=6", "hashes.flip=true")
-    assert cfg.neardup.radius == 6 and hashes_mod.variants(cfg.hashes) == 14
-    for bad in ("neardup.radius=40", "neardup.cosine=1.5", "hashes.scales=[]", "hashes.corner_mask=0.6"):
+    # 3 centred + 4 edge crops = 7 identity views; each transform adds 7 views; a check code per view.
+    cfg = pipeline_config("neardup.radius=6", "hashes.transforms=[]", 'hashes.check=""')
+    assert cfg.neardup.radius == 6 and hashes_mod.variants(cfg.hashes) == 7
+    cfg = pipeline_config('hashes.transforms=["mirror", "rot180"]', 'hashes.transform_boxes="all"')
+    assert hashes_mod.variants(cfg.hashes) == 2 * 21
+    cfg = pipeline_config('hashes.transforms=["mirror", "rot180"]', 'hashes.transform_boxes="whole"')
+    assert hashes_mod.variants(cfg.hashes) == 2 * 9
+    for bad in ("neardup.radius=40", "neardup.cosine=1.5", "hashes.scales=[]", "hashes.corner_mask=0.6",
+                'hashes.transforms=["sideways"]', 'hashes.check="phash"', "neardup.check_radius=70"):
         with pytest.raises(ConfigError):
             pipeline_config(bad)
 
@@ -308,3 +383,35 @@ def test_keeper_order_is_configurable():
     assert out["a"]["dup_of"] == "b" and out["a"]["keep_reason"] == "sharpness"
     with pytest.raises(ConfigError):
         pipeline_config('neardup.keeper=["prettiest"]')
+
+
+# ----------------------------------------------------------------------------- end to end
+
+
+def test_explain_names_the_transform_of_a_mirrored_copy(tmp_path, capsys):
+    # A public photo (scikit-image's astronaut) and its mirror image: no perceptual hash survives a
+    # flip (Zauner 2010), the mirror views find it, and explain says so for the dropped copy.
+    from PIL import Image
+
+    from curate import api
+    from curate.cli import main
+
+    img = photoset.load_photo("astronaut")
+    root = tmp_path / "in"
+    root.mkdir()
+    img.save(root / "a.jpg", quality=95)
+    img.transpose(Image.Transpose.FLIP_LEFT_RIGHT).resize((400, 400)).save(root / "b.jpg", quality=90)
+    for stem in "ab":
+        (root / f"{stem}.txt").write_text("an astronaut in a white suit beside a flag", encoding="utf-8")
+    out = tmp_path / "out"
+    assert main(["run", "--input", str(root), "--out", str(out), "--quiet", "--set", "run.workers=1",
+                 "--set", "embed.enabled=false", "--set", "agreement.enabled=false"]) == 0
+    info = api.explain(out, "b.jpg")
+    assert info["reasons"] == ["duplicate"] and info["dup_transform"] == "mirror"
+    (dup,) = [c for c in info["checks"] if c["code"] == "duplicate"]
+    assert dup["failed"] and "mirror" in dup["detail"] and dup["value"] <= neardup.NeardupConfig().radius
+    assert [m["dup_transform"] for m in info["group"] if m["source"] == "b.jpg"] == ["mirror"]
+    capsys.readouterr()
+    assert main(["explain", str(out), "b.jpg"]) == 0
+    text = capsys.readouterr().out
+    assert "(mirror)" in text and "duplicate" in text

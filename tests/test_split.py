@@ -342,7 +342,7 @@ def test_semantic_decontamination_finds_a_mirrored_copy(planted, tmp_path):
     # (0.92 for this one); no other planted photo comes within 0.9 of the mirrored copy (asserted below).
     ImageOps.mirror(_photo(106)).save(bench / "mirrored_p06.jpg", quality=90)
     sets = [f'split.eval_sets=["{bench}"]', "split.eval_semantic_cosine=0.9", "inspect.min_short_side=100",
-            "inspect.min_file_bytes=0", 'embed.model="demo"', 'embed.pretrained=""', "hashes.flip=false"]
+            "inspect.min_file_bytes=0", 'embed.model="demo"', 'embed.pretrained=""', "hashes.transforms=[]"]
     sets += ["agreement.enabled=false"] if "agreement" in config_sections() else []
     out = tmp_path / "out"
     api.run(None, input=str(planted / "train"), out=str(out), sets=sets)

@@ -456,7 +456,9 @@ def _dup_text(row: dict) -> str:
         return "same bytes (sha256)"
     if sig == "embedding" and d is not None:
         return f"cosine {1.0 - float(d):.4f} (embedding)"
-    return f"{cards.number(d)} bits ({sig})" if d is not None else str(sig)
+    how = row.get("dup_transform")
+    sig_text = f"{sig}, {how}" if how and how != "identity" else str(sig)
+    return f"{cards.number(d)} bits ({sig_text})" if d is not None else sig_text
 
 
 def keeper_reason(keeper: dict, others: list[dict]) -> str:

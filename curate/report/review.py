@@ -182,7 +182,9 @@ def _facts(r: dict) -> list[tuple[str, Any]]:
         facts.append(("split", r["split"]))
     if r.get("dup_of"):
         sig, d = r.get("dup_signal"), r.get("dup_distance")
-        facts.append(("copy of", f"{r['dup_of']} ({sig}{'' if d is None else f', {cards.number(d)}'})"))
+        how = r.get("dup_transform")
+        how = f", {how}" if how and how != "identity" else ""
+        facts.append(("copy of", f"{r['dup_of']} ({sig}{how}{'' if d is None else f', {cards.number(d)}'})"))
     return facts + meta_facts(r)
 
 

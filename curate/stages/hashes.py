@@ -2,8 +2,10 @@
 
 It reads the image inspect has already decoded (RGB, EXIF orientation applied, alpha on white,
 maybe JPEG draft-decoded), so nothing is decoded twice. The codes are 64-bit imagehash codes of
-several views (centred and edge-anchored crops, corners masked, optionally mirrored), one list per
-sample; `neardup`, `split` and `leakcheck` compare two samples by the closest pair of their views.
+several views (centred and edge-anchored crops, corners masked, then each listed transform such as
+the mirror image), plus a check code of another hash family per view, one list per sample
+(curate.similarity.image_codes); `neardup`, `split` and `leakcheck` compare two samples by the
+closest allowed pair of their views.
 """
 from __future__ import annotations
 
@@ -13,14 +15,15 @@ from typing import Any, Literal
 import numpy as np
 import pyarrow as pa
 
-from .. import hashing
+from .. import similarity
 from ..checks import CHECKS_TYPE
 from ..imaging import decoded
 from .base import Column, ConfigView, StageContext, checks_column, stage
 
 NAME = "hashes"
-# Bump when the codes for the same settings change (image_codes' processing).
-VERSION = "2"
+# Bump when the codes for the same settings change (curate.similarity.codes.VERSION covers the
+# code maker itself and is part of the identity below).
+VERSION = "3"
 CODES = "hash_codes"
 
 
@@ -38,29 +41,37 @@ class HashesConfig:
     # Share of each side masked (set to the picture's mean) in every corner of every crop, so small
     # corner stamps and watermarks do not count (measured: stamps 20+ bits plain, <= 8 masked). 0 = off.
     corner_mask: float = 0.2
-    # Also hash the mirrored picture (no perceptual hash survives a flip: Zauner 2010). Doubles codes.
-    flip: bool = False
+    # Transformed views, any of mirror, rot90, rot180, rot270, mirror_rot90, mirror_rot180,
+    # mirror_rot270. No perceptual hash survives a flip (Zauner 2010); mirrored copies count as
+    # copies for training (common practice). Each transform adds as many views as the crops.
+    transforms: list[str] = field(default_factory=lambda: ["mirror"])
+    # Crops hashed for each transform: "all" (every crop above) or "whole" (the whole picture only).
+    # Measured on public photos (bench/neardup_quality.py, mirror): "whole" makes 16 codes instead
+    # of 28 and keeps different photos 12 bits apart instead of 10; mirrored copies are found at
+    # recall 1.0 either way, mirrored copies also cropped 10% on one side at 0.80 instead of 0.95.
+    transform_boxes: Literal["all", "whole"] = "whole"
     # The grey picture is resized to this square before cropping, so every source size and JPEG draft
     # decode hashes on the same grid (common practice; 8x imagehash's 32 px DCT input). 0 = off.
     work_size: int = 256
+    # A check code per view of another hash family ("dhash", "phash" or "" for none): a view pair
+    # matches only when its check codes are within neardup.check_radius too. Different photos whose
+    # pHash views collide differ by 18+ bits in dHash on those views (bench/neardup_quality.py).
+    check: str = "dhash"
 
     def validate(self) -> None:
-        if not self.scales:
-            raise ValueError("scales must list at least one crop share")
-        for s in self.scales:
-            if not 0.5 <= s <= 1.0:
-                raise ValueError(f"scales must be within 0.5..1.0, got {s}")
-        if self.side_scale and not 0.5 <= self.side_scale < 1.0:
-            raise ValueError(f"side_scale must be 0 (off) or within 0.5..1.0 (exclusive), got {self.side_scale}")
-        if not 0.0 <= self.corner_mask < 0.5:
-            raise ValueError(f"corner_mask must be within 0..0.5, got {self.corner_mask}")
-        if self.work_size < 0 or 0 < self.work_size < 32:
-            raise ValueError(f"work_size must be 0 (off) or at least 32, got {self.work_size}")
+        code_settings(self).validate()
+
+
+def code_settings(cfg: HashesConfig) -> similarity.CodeSettings:
+    """The curate.similarity code settings of a [hashes] section."""
+    return similarity.CodeSettings(kind=cfg.kind, scales=list(cfg.scales), side_scale=cfg.side_scale,
+                                   corner_mask=cfg.corner_mask, transforms=list(cfg.transforms),
+                                   transform_boxes=cfg.transform_boxes, work_size=cfg.work_size, check=cfg.check)
 
 
 def variants(cfg: HashesConfig) -> int:
-    """Codes per sample."""
-    return hashing.variant_count(cfg.scales, cfg.side_scale, cfg.flip)
+    """Codes per sample (main codes of every view, then their check codes)."""
+    return similarity.code_count(code_settings(cfg))
 
 
 def columns(view: ConfigView) -> tuple[Column, ...]:
@@ -75,16 +86,7 @@ def image_codes(img: Any, cfg: HashesConfig) -> list[int]:
         from PIL import Image
 
         img = Image.fromarray(img, "RGB")
-    codes = hashing.image_codes(
-        img,
-        kind=cfg.kind,
-        scales=cfg.scales,
-        side_scale=cfg.side_scale,
-        corner_mask=cfg.corner_mask,
-        flip=cfg.flip,
-        work_size=cfg.work_size,
-    )
-    return [int(c) for c in codes]
+    return [int(c) for c in similarity.image_codes(img, code_settings(cfg))]
 
 
 @stage(name=NAME, version=VERSION, config=HashesConfig, kind="shard", phase="check", needs=("image", "sha256"),
@@ -105,7 +107,9 @@ def run(table: pa.Table, cfg: HashesConfig, ctx: StageContext) -> pa.Table:
 def identity() -> dict:
     import imagehash
 
-    return {"imagehash": imagehash.__version__}
+    from ..similarity import codes
+
+    return {"imagehash": imagehash.__version__, "codes": codes.VERSION}
 
 
 def codes_matrix(column: pa.ChunkedArray | pa.Array, k: int) -> tuple[np.ndarray, np.ndarray]:
@@ -134,3 +138,29 @@ def codes_matrix(column: pa.ChunkedArray | pa.Array, k: int) -> tuple[np.ndarray
                 codes[i] = np.asarray(v, dtype=np.uint64)
     codes[~valid] = 0
     return codes, valid
+
+
+@dataclass
+class Codes:
+    """A table's hash column laid out for curate.similarity."""
+
+    main: np.ndarray  # uint64 (n, views): one main code per view, identity views first
+    checks: np.ndarray | None  # uint64 (n, views): the check code of each view, or None
+    valid: np.ndarray  # bool (n,): rows whose codes exist (decoded images)
+    identity: int  # leading identity views
+    views: list[similarity.View]  # what each column of `main` is
+
+    def rows(self, rows: np.ndarray) -> Codes:
+        """The same codes for a subset of rows."""
+        return Codes(self.main[rows], None if self.checks is None else self.checks[rows], self.valid[rows],
+                     self.identity, self.views)
+
+
+def read_codes(table: pa.Table, cfg: HashesConfig) -> Codes | None:
+    """The hash column of a table as ``Codes`` (None when the table has no hash column)."""
+    if CODES not in table.column_names:
+        return None
+    s = code_settings(cfg)
+    c, valid = codes_matrix(table.column(CODES), similarity.code_count(s))
+    main, checks = similarity.split_codes(c, s)
+    return Codes(main, checks, valid, similarity.identity_count(s), similarity.views(s))

@@ -2,20 +2,26 @@
 
 A global stage: it sees every decoded sample at once. Three signals link two samples, strongest
 first: the same file bytes (sha256, no search at all), perceptual codes within `radius` bits (the
-closest pair of the two samples' views, found by exact multi-index Hamming search; same pairs as
-brute force), and, when the embed stage ran and `semantic` is on, image embeddings with cosine >=
-`cosine` (SemDeDup-style search within k-means clusters beyond `cosine_exact_max` samples). Linked
-samples form groups (union-find, so links chain).
+closest allowed pair of the two samples' views whose check codes are also within `check_radius`,
+found by exact multi-index Hamming search; same links as brute force), and, when the embed stage
+ran and `semantic` is on, image embeddings with cosine >= `cosine` (SemDeDup-style search within
+k-means clusters beyond `cosine_exact_max` samples).
 
-Only live samples are grouped (a sample another check already dropped never takes a group's
-place). The keeper of a group follows `keeper`, a priority list (default: no risk or quality flags,
-more pixels, a lossless file or a higher JPEG quality, sharper, less area under overlays or bands,
-then the smallest sample_id). Every other member fails the `duplicate` check; its `keep_reason`
-names the criterion on which the kept copy won, its `dup_of` names the keeper, `dup_signal` the strongest signal linking it to the keeper
-("sha256" < "phash"/"dhash" < "embedding") and `dup_distance` its distance to the keeper in that
-signal's unit: Hamming bits of the closest views for sha256 (0) and hash codes, 1 - cosine for
-embeddings. `group_id` is the keeper's sample_id (a lone sample is its own group), so it is stable
-while the keeper stays.
+Groups do not chain: samples are visited in keeper order (`keeper`, a priority list; default: no
+risk or quality flags, more pixels, a lossless file or a higher JPEG quality, sharper, less area
+under overlays or bands, then the smallest sample_id); a sample no earlier keeper has claimed
+becomes a keeper, and claims every unclaimed sample linked directly to it
+(curate.similarity.group). So every copy is linked to its own keeper, never only through other
+copies, and the keeper is the best-ranked member of its group. Only live samples are grouped (a
+sample another check already dropped never takes a group's place).
+
+Every other member fails the `duplicate` check; `keep_reason` names the criterion on which the
+kept copy won, `dup_of` the keeper, `dup_signal` the strongest signal linking it to the keeper
+("sha256" < "phash"/"dhash" < "embedding"), `dup_distance` its distance to the keeper in that
+signal's unit (Hamming bits of the matched views; 0 for sha256; 1 - cosine for embeddings), and
+`dup_transform` how the copy relates to the keeper (identity, mirror, rot90, rot180, ..., with
+"+crop" when different crop views matched). `group_id` is the keeper's sample_id (a lone sample is
+its own group), so it is stable while the keeper stays.
 """
 from __future__ import annotations
 
@@ -27,7 +33,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from .. import hashing
+from .. import similarity
 from ..checks import CHECKS_TYPE, check
 from . import hashes as hashes_mod
 from .base import CheckSpec, Column, StageContext, checks_column, stage
@@ -35,16 +41,21 @@ from .base import CheckSpec, Column, StageContext, checks_column, stage
 log = logging.getLogger(__name__)
 
 NAME = "neardup"
-VERSION = "2"
+VERSION = "3"
 
 
 @dataclass
 class NeardupConfig:
     enabled: bool = True
-    # Largest Hamming distance (bits of 64, closest views) for two samples to be copies. Measured in
-    # bench/neardup_quality.py at the default [hashes]: edited copies <= 8, distinct photos >= 12.
+    # Largest Hamming distance (bits of 64, closest allowed views) for two samples to be copies.
+    # Measured in bench/neardup_quality.py at the default [hashes]: everyday edited copies <= 8;
+    # different photos >= 10 even among 10-30% crops and turns of them (check codes passing).
     # pHash codes split 32/32 around their median, so distances are even: 8 and 9 act the same.
     radius: int = 8
+    # Largest Hamming distance of the check codes ([hashes] check) of the matched views. Unrelated
+    # codes differ by 32 +- 4 bits (64 fair bits, simple arithmetic): 16 is four deviations below;
+    # measured on public photos, no pair of different photos passed at 16 (bench/neardup_quality.py).
+    check_radius: int = similarity.CHECK_RADIUS
     # Also link samples by image-embedding cosine when the embed stage ran (SemDeDup, Abbas et al. 2023).
     semantic: bool = True
     # Cosine at or above which two images are copies. High on purpose: it must not merge different
@@ -69,6 +80,8 @@ class NeardupConfig:
     def validate(self) -> None:
         if not 0 <= self.radius <= 32:
             raise ValueError(f"radius must be within 0..32 bits, got {self.radius}")
+        if not 0 <= self.check_radius <= 64:
+            raise ValueError(f"check_radius must be within 0..64 bits, got {self.check_radius}")
         if not 0.0 < self.cosine <= 1.0:
             raise ValueError(f"cosine must be within (0, 1], got {self.cosine}")
         if self.clusters < 0 or self.probes < 1 or self.cosine_exact_max < 0:
@@ -135,6 +148,8 @@ COLUMNS = (
     Column("dup_of", pa.string(), "the kept sample this one is a copy of"),
     Column("dup_signal", pa.string(), "what linked it: sha256, the hash kind, or embedding"),
     Column("dup_distance", pa.float32(), "distance to the kept sample in that signal's unit"),
+    Column("dup_transform", pa.string(), "how the copy relates to the kept sample: identity, mirror, rot90, "
+           "rot180, rot270, ... with +crop when different crops matched (null for embedding links)"),
     Column("keep_reason", pa.string(), "for a copy: the criterion on which the kept copy won"),
 )
 OUTPUT_SCHEMA = pa.schema([("sample_id", pa.string())] + [(c.name, c.type) for c in COLUMNS]
@@ -163,62 +178,6 @@ def _embeddings(table: pa.Table, rows: np.ndarray) -> tuple[np.ndarray, np.ndarr
     return emb, has
 
 
-def _keepers(labels: np.ndarray, rank: np.ndarray) -> np.ndarray:
-    """For each element, the element of its group with the lowest rank."""
-    order = np.lexsort((rank, labels))
-    lab_sorted = labels[order]
-    first = np.concatenate(([True], lab_sorted[1:] != lab_sorted[:-1]))
-    group_first = order[first]
-    group_of_sorted = np.cumsum(first) - 1
-    keeper = np.empty_like(labels)
-    keeper[order] = group_first[group_of_sorted]
-    return keeper
-
-
-def group_samples(
-    sha_key: np.ndarray,
-    codes: np.ndarray | None,
-    has_codes: np.ndarray | None,
-    emb: np.ndarray | None,
-    has_emb: np.ndarray | None,
-    radius: int,
-    cosine: float,
-    *,
-    cosine_exact_max: int = 20_000,
-    clusters: int = 0,
-    probes: int = 2,
-    seed: int = 0,
-    threads: int = 1,
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Group labels after each signal: (by sha256, + hash codes, + embeddings); a label is the
-    smallest member index. ``sha_key``: equal non-negative numbers for equal bytes, -1 unknown.
-    The searches run on one sample per distinct sha256 only."""
-    n = sha_key.shape[0]
-    key = np.where(sha_key >= 0, sha_key, -1 - np.arange(n))  # unknown bytes: a key of its own
-    _, first_idx, inv = np.unique(key, return_index=True, return_inverse=True)
-    rep_of = first_idx[inv.ravel()]  # each row's representative: the first row with its bytes
-    lab_sha = hashing.components(n, np.arange(n), rep_of)
-    reps = np.unique(rep_of)
-    ei, ej = [np.arange(n)], [rep_of]
-    if codes is not None and has_codes is not None:
-        r = reps[has_codes[reps]]
-        if r.shape[0] > 1:
-            lab = hashing.sample_components(codes[r], radius, threads=threads)
-            ei.append(r)
-            ej.append(r[lab])
-    lab_hash = hashing.components(n, np.concatenate(ei), np.concatenate(ej))
-    lab_all = lab_hash
-    if emb is not None and has_emb is not None and emb.shape[1] > 0:
-        r = reps[has_emb[reps]]
-        if r.shape[0] > 1:
-            p = hashing.cosine_pairs(
-                emb[r], cosine, clusters=clusters or None, probes=probes, cosine_exact_max=cosine_exact_max, seed=seed
-            )
-            if len(p):
-                lab_all = hashing.components(n, np.concatenate([np.arange(n), r[p.i]]), np.concatenate([lab_hash, r[p.j]]))
-    return lab_sha, lab_hash, lab_all
-
-
 def _sha_keys(table: pa.Table, rows: np.ndarray) -> np.ndarray:
     """Equal numbers for equal sha256 values among the given rows, -1 where unknown."""
     if "sha256" not in table.column_names or not len(rows):
@@ -228,6 +187,77 @@ def _sha_keys(table: pa.Table, rows: np.ndarray) -> np.ndarray:
     return np.asarray(enc.fill_null(-1).to_numpy(zero_copy_only=False), dtype=np.int64)
 
 
+def _rank(table: pa.Table, rows: np.ndarray, keeper: list[str]) -> tuple[np.ndarray, np.ndarray]:
+    """(rank, scores) of the given rows: rank 0 is the best copy by the keeper priority, the
+    smallest sample_id last."""
+    m = rows.shape[0]
+    id_rank = np.empty(m, np.int64)
+    if m:
+        by_id = pc.sort_indices(table.column("sample_id").take(pa.array(rows, type=pa.int64())))
+        id_rank[by_id.to_numpy()] = np.arange(m)
+    scores = keeper_scores(table, rows, keeper)
+    rank = np.empty(m, np.int64)
+    rank[np.lexsort((id_rank, *scores[::-1]))] = np.arange(m)
+    return rank, scores
+
+
+def _expand_classes(cls: np.ndarray, ok: np.ndarray, ca: np.ndarray, cb: np.ndarray) -> tuple[np.ndarray, np.ndarray,
+                                                                                                np.ndarray]:
+    """Every (row of class ca[k], row of class cb[k]) among rows with ``ok``, and its k."""
+    members = np.flatnonzero(ok)
+    order = members[np.argsort(cls[members], kind="stable")]
+    counts = np.bincount(cls[members], minlength=int(cls.max(initial=-1)) + 1)
+    starts = np.cumsum(counts) - counts
+    per = counts[ca] * counts[cb]
+    src = np.repeat(np.arange(ca.shape[0]), per)
+    off = np.arange(int(per.sum())) - np.repeat(np.cumsum(per) - per, per)
+    nb = np.repeat(counts[cb], per)
+    return order[np.repeat(starts[ca], per) + off // nb], order[np.repeat(starts[cb], per) + off % nb], src
+
+
+def embedding_links(emb: np.ndarray, has_emb: np.ndarray, sha_key: np.ndarray, cfg: NeardupConfig
+                    ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(i, j, cosine) of every pair of rows whose embeddings reach ``cfg.cosine``. The search runs
+    on one row per distinct file (same bytes, same embedding); its pairs reach every copy."""
+    n = sha_key.shape[0]
+    key = np.where(sha_key >= 0, sha_key, -1 - np.arange(n))  # unknown bytes: a key of its own
+    cls = np.unique(key, return_inverse=True)[1].ravel()
+    with_emb = np.flatnonzero(has_emb)
+    reps = with_emb[np.unique(cls[with_emb], return_index=True)[1]]  # first row with an embedding per file
+    empty = (np.empty(0, np.int64), np.empty(0, np.int64), np.empty(0, np.float32))
+    if reps.shape[0] < 2:
+        return empty
+    p = similarity.cosine_pairs(emb[reps], cfg.cosine, clusters=cfg.clusters or None, probes=cfg.probes,
+                                exact_max=cfg.cosine_exact_max, seed=cfg.seed)
+    if not len(p):
+        return empty
+    i, j, src = _expand_classes(cls, has_emb, cls[reps[p.i]], cls[reps[p.j]])
+    return i, j, np.asarray(p.distance, np.float32)[src]
+
+
+def group_samples(sha_key: np.ndarray, codes: hashes_mod.Codes | None, emb: np.ndarray | None,
+                  has_emb: np.ndarray | None, rank: np.ndarray, cfg: NeardupConfig,
+                  threads: int = 1) -> similarity.Groups:
+    """Leader groups of the given samples (module docstring) from their sha256 keys (equal
+    non-negative numbers for equal bytes, -1 unknown), codes and embeddings (any may be None)."""
+    sig = similarity.Signals(same_key=sha_key, radius=cfg.radius, check_radius=cfg.check_radius)
+    if codes is not None:
+        sig.codes, sig.has_codes, sig.checks, sig.identity = codes.main, codes.valid, codes.checks, codes.identity
+    if emb is not None and has_emb is not None and emb.shape[1] > 0:
+        sig.emb_pairs = embedding_links(emb, has_emb, sha_key, cfg)
+        sig.emb = emb
+    return similarity.group(rank, sig, threads=threads)
+
+
+def _inputs(table: pa.Table, rows: np.ndarray, cfg: NeardupConfig, ctx: StageContext):
+    """(sha keys, codes, embeddings, has embedding) of the given rows; absent signals are None."""
+    codes = hashes_mod.read_codes(table, ctx.config.section("hashes"))
+    emb = has_emb = None
+    if cfg.semantic and "image_emb" in table.column_names and rows.shape[0]:
+        emb, has_emb = _embeddings(table, rows)
+    return _sha_keys(table, rows), None if codes is None else codes.rows(rows), emb, has_emb
+
+
 @stage(name=NAME, version=VERSION, config=NeardupConfig, kind="global", phase="group", alive_only=True,
        needs=("decoded", "width", "height"), wants=("sha256", hashes_mod.CODES, "image_emb", "agreement",
                                                     "flags_before", "format", "jpeg_quality", "sharpness",
@@ -235,94 +265,58 @@ def _sha_keys(table: pa.Table, rows: np.ndarray) -> np.ndarray:
        sections=("hashes",), provides=COLUMNS, checks=CHECKS, after=("decontaminate",), parallel="inline")
 def run(table: pa.Table, cfg: NeardupConfig, ctx: StageContext) -> pa.Table:
     """Group copies of one picture and keep the best copy of each group."""
-    n = table.num_rows
-    sample_id = table.column("sample_id").to_pylist()
     decoded = np.asarray(table.column("decoded").fill_null(False).to_numpy(zero_copy_only=False), dtype=bool)
     rows = np.flatnonzero(decoded)
-    m = rows.shape[0]
-
-    hcfg = ctx.config.section("hashes")
-    codes = has_codes = None
-    signal_name = hcfg.kind
-    if hashes_mod.CODES in table.column_names:
-        all_codes, all_has = hashes_mod.codes_matrix(table.column(hashes_mod.CODES), hashes_mod.variants(hcfg))
-        codes, has_codes = all_codes[rows], all_has[rows]
-    emb = has_emb = None
-    if cfg.semantic and "image_emb" in table.column_names and m:
-        emb, has_emb = _embeddings(table, rows)
-
+    sha_key, codes, emb, has_emb = _inputs(table, rows, cfg, ctx)
+    rank, scores = _rank(table, rows, cfg.keeper)
     threads = max(1, min(int(getattr(ctx, "workers", 0) or os.cpu_count() or 1), 4))
-    lab_sha, lab_hash, lab_all = group_samples(
-        _sha_keys(table, rows), codes, has_codes, emb, has_emb, cfg.radius, cfg.cosine,
-        cosine_exact_max=cfg.cosine_exact_max, clusters=cfg.clusters, probes=cfg.probes, seed=cfg.seed,
-        threads=threads,
-    )
+    groups = group_samples(sha_key, codes, emb, has_emb, rank, cfg, threads)
+    log.debug("neardup: %d samples grouped in %d parallel rounds", rows.shape[0], groups.rounds)
+    kind = ctx.config.section("hashes").kind
+    return _output(table, rows, groups, scores, cfg, kind, None if codes is None else codes.views)
 
-    sizes = np.bincount(lab_all, minlength=m) if m else np.zeros(0, np.int64)
-    ids = [sample_id[i] for i in rows]
-    # Rank by the keeper priority, the smallest sample_id last.
-    id_rank = np.empty(m, np.int64)
-    if m:
-        by_id = pc.sort_indices(table.column("sample_id").take(pa.array(rows, type=pa.int64())))
-        id_rank[by_id.to_numpy()] = np.arange(m)
-    scores = keeper_scores(table, rows, cfg.keeper)
-    rank_order = np.lexsort((id_rank, *scores[::-1]))
-    rank = np.empty(m, np.int64)
-    rank[rank_order] = np.arange(m)
-    keeper = _keepers(lab_all, rank) if m else np.zeros(0, np.int64)
 
-    group_id: list[str | None] = [None] * n
-    group_size: list[int | None] = [None] * n
-    dup_of: list[str | None] = [None] * n
-    dup_signal: list[str | None] = [None] * n
-    dup_distance: list[float | None] = [None] * n
-    keep_reason: list[str | None] = [None] * n
+def _output(table: pa.Table, rows: np.ndarray, groups: similarity.Groups, scores: np.ndarray, cfg: NeardupConfig,
+            kind: str, views: list[similarity.View] | None) -> pa.Table:
+    """The stage's columns for every input row (rows outside ``rows`` stay null)."""
+    n = table.num_rows
+    out: dict[str, list] = {c.name: [None] * n for c in COLUMNS}
     checks: list[list[dict]] = [[] for _ in range(n)]
-    others = np.flatnonzero(keeper != np.arange(m))
-    dist_hash = np.zeros(m, np.float64)
-    if codes is not None and others.shape[0]:
-        both = has_codes[others] & has_codes[keeper[others]]
-        d = np.full(others.shape[0], np.nan)
-        d[both] = hashing.min_distances(codes[others[both]], codes[keeper[others[both]]])
-        dist_hash[others] = d
-    dist_emb = np.zeros(m, np.float64)
-    if emb is not None and emb.shape[1] and others.shape[0]:
-        dist_emb[others] = 1.0 - np.einsum("ij,ij->i", emb[others], emb[keeper[others]])
-    for k in range(m):
-        i = rows[k]
-        kk = keeper[k]
-        gid = ids[kk]
-        group_id[i] = gid
-        group_size[i] = int(sizes[lab_all[k]])
+    ids = table.column("sample_id").to_pylist()
+    sizes = groups.sizes()
+    names = ("sha256", kind, "embedding")
+    for k, i in enumerate(rows.tolist()):
+        kk = int(groups.leader[k])
+        gid = ids[rows[kk]]
+        out["group_id"][i], out["group_size"][i] = gid, int(sizes[k])
         if kk == k:
-            detail = "no copy" if group_size[i] == 1 else f"kept over {group_size[i] - 1} copies"
+            detail = "no copy" if sizes[k] == 1 else f"kept over {sizes[k] - 1} copies"
             checks[i] = [check("duplicate", failed=False, detail=detail)]
             continue
-        if lab_sha[k] == lab_sha[kk]:
-            sig, dist = "sha256", 0.0
-            rec = check("duplicate", failed=True, detail=f"same bytes as {gid}")
-        elif lab_hash[k] == lab_hash[kk]:
-            sig, dist = signal_name, float(dist_hash[k])
-            rec = check("duplicate", failed=True, value=dist, threshold=cfg.radius, op=">", unit="bits",
-                        detail=f"copy of {gid} ({sig})")
-        else:
-            sig, dist = "embedding", float(max(dist_emb[k], 0.0))
+        sig = names[int(groups.signal[k])]
+        dist = float(groups.distance[k])
+        how = _how(groups, k, sig, views)
+        if sig == "embedding":
             rec = check("duplicate", failed=True, value=1.0 - dist, threshold=cfg.cosine, op="<", unit="cosine",
                         detail=f"copy of {gid} (embedding)")
-        dup_of[i], dup_signal[i], dup_distance[i] = gid, sig, dist
-        keep_reason[i] = why_kept(scores, cfg.keeper, kk, k)
-        rec["detail"] = f"{rec['detail']}; the kept copy wins on {keep_reason[i]}"
+        elif sig == "sha256":
+            rec = check("duplicate", failed=True, detail=f"same bytes as {gid}")
+        else:
+            rec = check("duplicate", failed=True, value=dist, threshold=cfg.radius, op=">", unit="bits",
+                        detail=f"copy of {gid} ({sig}, {how})")
+        reason = why_kept(scores, cfg.keeper, kk, k)
+        rec["detail"] = f"{rec['detail']}; the kept copy wins on {reason}"
         checks[i] = [rec]
-    return pa.Table.from_arrays(
-        [
-            table.column("sample_id"),
-            pa.array(group_id, pa.string()),
-            pa.array(group_size, pa.int32()),
-            pa.array(dup_of, pa.string()),
-            pa.array(dup_signal, pa.string()),
-            pa.array(dup_distance, pa.float32()),
-            pa.array(keep_reason, pa.string()),
-            pa.array(checks, CHECKS_TYPE),
-        ],
-        schema=OUTPUT_SCHEMA,
-    )
+        out["dup_of"][i], out["dup_signal"][i], out["dup_distance"][i] = gid, sig, dist
+        out["dup_transform"][i], out["keep_reason"][i] = how, reason
+    arrays = [table.column("sample_id")] + [pa.array(out[c.name], c.type) for c in COLUMNS]
+    return pa.Table.from_arrays(arrays + [pa.array(checks, CHECKS_TYPE)], schema=OUTPUT_SCHEMA)
+
+
+def _how(groups: similarity.Groups, k: int, signal: str, views: list[similarity.View] | None) -> str | None:
+    """How member k relates to its keeper: same bytes are identical, codes name the matched views."""
+    if signal == "sha256":
+        return "identity"
+    if signal == "embedding" or views is None:
+        return None
+    return similarity.match_name(views, int(groups.view_kept[k]), int(groups.view_member[k]))

@@ -155,46 +155,50 @@ def group_keys(sample_ids: Sequence[str], labels: np.ndarray, members: np.ndarra
     return [best[lab] if m else None for lab, m in zip(labels.tolist(), members.tolist())]
 
 
-def _labels(table: pa.Table, members: np.ndarray, codes: np.ndarray | None, has_codes: np.ndarray,
-            radius: int, cfg: SplitConfig) -> np.ndarray:
+def _labels(table: pa.Table, members: np.ndarray, codes: Any, radius: int, check_radius: int,
+            cfg: SplitConfig) -> np.ndarray:
     """Group label per row: neardup's groups, joined with this stage's own Hamming components
-    (so two samples within `radius` share a group whatever neardup did) and, when asked, with
-    semantic pairs. Rows outside `members` keep their own index."""
-    from ..hashing import components
+    (so two samples within `radius` share a side whatever neardup did: a leak is any such pair,
+    so here links do chain) and, when asked, with semantic pairs. Rows outside `members` keep
+    their own index."""
+    from .. import similarity
 
     n = table.num_rows
     ei: list[np.ndarray] = []
     ej: list[np.ndarray] = []
     if "group_id" in table.column_names:
-        first: dict[str, int] = {}
-        gi, gj = [], []
-        for i, g in enumerate(table.column("group_id").to_pylist()):
-            if g is None or not members[i]:
-                continue
-            gi.append(first.setdefault(g, i))
-            gj.append(i)
-        ei.append(np.asarray(gi, dtype=np.int64))
-        ej.append(np.asarray(gj, dtype=np.int64))
+        gi, gj = _group_links(table.column("group_id").to_pylist(), members)
+        ei.append(gi)
+        ej.append(gj)
     if codes is not None:
-        from ..hashing import sample_components
-
-        rows = np.nonzero(members & has_codes)[0]
+        rows = np.nonzero(members & codes.valid)[0]
         if rows.size:
-            lab = sample_components(codes[rows], radius)
+            chk = None if codes.checks is None else codes.checks[rows]
+            lab = similarity.sample_components(codes.main[rows], radius, codes.identity, chk, check_radius)
             ei.append(rows)
             ej.append(rows[lab])
     if cfg.group_semantic_cosine > 0 and "image_emb" in table.column_names:
-        from ..hashing import cosine_pairs
-
         emb, has = _embeddings(table)
         rows = np.nonzero(members & has)[0]
         if rows.size > 1:
-            p = cosine_pairs(emb[rows], cfg.group_semantic_cosine)
+            p = similarity.cosine_pairs(emb[rows], cfg.group_semantic_cosine)
             ei.append(rows[np.asarray(p.i, dtype=np.int64)])
             ej.append(rows[np.asarray(p.j, dtype=np.int64)])
     if not ei:
         return np.arange(n, dtype=np.int64)
-    return components(n, np.concatenate(ei), np.concatenate(ej))
+    return similarity.components(n, np.concatenate(ei), np.concatenate(ej))
+
+
+def _group_links(group_ids: list[str | None], members: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Links from each member to the first row of its group_id."""
+    first: dict[str, int] = {}
+    gi, gj = [], []
+    for i, g in enumerate(group_ids):
+        if g is None or not members[i]:
+            continue
+        gi.append(first.setdefault(g, i))
+        gj.append(i)
+    return np.asarray(gi, dtype=np.int64), np.asarray(gj, dtype=np.int64)
 
 
 def _embeddings(table: pa.Table) -> tuple[np.ndarray, np.ndarray]:
@@ -243,13 +247,20 @@ def effective_radius(cfg: SplitConfig, config: Any) -> int:
     return int(r) if r is not None else 8
 
 
-def _decontaminate(table: pa.Table, has_codes: np.ndarray, codes: np.ndarray | None, cfg: SplitConfig,
+def check_radius(config: Any) -> int:
+    """The check codes' radius: neardup's."""
+    from .. import similarity
+
+    return int(getattr(getattr(config, "neardup", None), "check_radius", similarity.CHECK_RADIUS))
+
+
+def _decontaminate(table: pa.Table, codes: Any, cfg: SplitConfig,
                    ctx: StageContext) -> tuple[list[str | None], list[list[dict]]]:
     """Per row: the matched outside image (or None) and the eval_overlap check (or none)."""
     from .. import imagesets
-    from ..hashing import sample_cross_pairs
 
     n = table.num_rows
+    has_codes = np.zeros(n, dtype=bool) if codes is None else codes.valid
     match: list[str | None] = [None] * n
     best: list[tuple[float, str] | None] = [None] * n
     checks: list[list[dict]] = [[] for _ in range(n)]
@@ -259,7 +270,6 @@ def _decontaminate(table: pa.Table, has_codes: np.ndarray, codes: np.ndarray | N
     radius = effective_radius(cfg, ctx.config)
     settings = imagesets.default_settings(ctx.config)
     cache = os.path.join(ctx.work_dir, "evalsets") if ctx.work_dir else None
-    rows = np.nonzero(has_codes)[0]
     semantic = cfg.eval_semantic_cosine > 0 and "image_emb" in table.column_names
     emb, has_emb = _embeddings(table) if semantic else (None, None)
     for path in paths:
@@ -268,14 +278,8 @@ def _decontaminate(table: pa.Table, has_codes: np.ndarray, codes: np.ndarray | N
         bad = int((~sc.ok).sum())
         if bad:
             log.warning("split: %d of %d images of eval set %s could not be hashed", bad, len(images), path)
-        orows = np.nonzero(sc.ok)[0]
-        if rows.size and orows.size and codes is not None:
-            p = sample_cross_pairs(codes[rows], sc.codes[orows], radius)
-            for a, b, d in zip(np.asarray(p[0]).tolist(), np.asarray(p[1]).tolist(), np.asarray(p[2]).tolist()):
-                i, ref = int(rows[a]), images.refs[int(orows[b])]
-                cand = (float(d), ref)
-                if best[i] is None or cand < best[i]:
-                    best[i] = cand
+        if codes is not None:
+            _code_matches(codes, sc, radius, check_radius(ctx.config), best)
         if semantic and emb is not None:
             _semantic_matches(images, emb, has_emb, cfg, ctx, cache, best)
     for i in range(n):
@@ -294,6 +298,19 @@ def _decontaminate(table: pa.Table, has_codes: np.ndarray, codes: np.ndarray | N
                 checks[i].append(check("eval_overlap", value=d, threshold=radius, op=">", unit="bits",
                                        detail=f"matches {ref}"))
     return match, checks
+
+
+def _code_matches(codes: Any, sc: Any, radius: int, check_r: int, best: list) -> None:
+    """Adds the closest outside image within ``radius`` of each row to `best` (distance, ref)."""
+    from .. import similarity
+
+    p = similarity.cross_set_pairs(codes.main, sc.main, radius, codes.identity, codes.valid, sc.ok, codes.checks,
+                                   sc.checks, check_r)
+    refs = sc.images.refs
+    for i, j, d in zip(p.i.tolist(), p.j.tolist(), p.distance.tolist()):
+        cand = (float(d), refs[j])
+        if best[i] is None or cand < best[i]:
+            best[i] = cand
 
 
 def _semantic_matches(images: Any, emb: np.ndarray, has_emb: np.ndarray, cfg: SplitConfig, ctx: StageContext,
@@ -318,13 +335,11 @@ def _semantic_matches(images: Any, emb: np.ndarray, has_emb: np.ndarray, cfg: Sp
 # --------------------------------------------------------------------------- the stages
 
 
-def _codes(table: pa.Table, ctx: StageContext) -> tuple[np.ndarray | None, np.ndarray]:
-    """(n, K) perceptual codes from the hashes stage, and which rows have them."""
+def _codes(table: pa.Table, ctx: StageContext) -> Any:
+    """The perceptual codes from the hashes stage (curate.stages.hashes.Codes), or None."""
     from . import hashes as hmod
 
-    if hmod.CODES not in table.column_names:
-        return None, np.zeros(table.num_rows, dtype=bool)
-    return hmod.codes_matrix(table.column(hmod.CODES), hmod.variants(ctx.config.section("hashes")))
+    return hmod.read_codes(table, ctx.config.section("hashes"))
 
 
 def _has_eval_sets(view: Any) -> bool:
@@ -337,8 +352,7 @@ def _has_eval_sets(view: Any) -> bool:
        checks=CHECKS, active_if=_has_eval_sets, parallel="inline", identity=lambda view: _identity(view))
 def run_decontaminate(table: pa.Table, cfg: SplitConfig, ctx: StageContext) -> pa.Table:
     """Drop training candidates that near-duplicate an image of an outside evaluation set."""
-    codes, has_codes = _codes(table, ctx)
-    match, checks = _decontaminate(table, has_codes, codes, cfg, ctx)
+    match, checks = _decontaminate(table, _codes(table, ctx), cfg, ctx)
     if ctx.progress is not None:
         ctx.progress.advance(table.num_rows)
     return pa.Table.from_arrays([table.column("sample_id"), pa.array(match, pa.string()),
@@ -354,11 +368,11 @@ def run(table: pa.Table, cfg: SplitConfig, ctx: StageContext) -> pa.Table:
     """Assign whole near-duplicate groups of live samples to train or eval."""
     n = table.num_rows
     ids = table.column("sample_id").to_pylist()
-    codes, has_codes = _codes(table, ctx)
+    codes = _codes(table, ctx)
     split: list[str | None] = ["train"] * n
     if cfg.eval_fraction > 0 and n:
         members = np.ones(n, dtype=bool)
-        labels = _labels(table, members, codes, has_codes, effective_radius(cfg, ctx.config), cfg)
+        labels = _labels(table, members, codes, effective_radius(cfg, ctx.config), check_radius(ctx.config), cfg)
         keys = group_keys(ids, labels, members)
         gkeys = sorted(set(keys))
         gindex = {k: g for g, k in enumerate(gkeys)}
