@@ -419,7 +419,7 @@ class Corpus:
             spec, img, r = self.scene(post=workshop.watermark)
             self.add(path=self.next_name(folder), data=jpeg(img, r.choice((84, 86, 88, 90, 92))),
                      sidecar=self.sidecar(self.caption(spec, r), r), expect="quarantined",
-                     reason="concept:watermark", size=img.size,
+                     reason="watermark", size=img.size,
                      note="the shop watermark stamped across the photo; the caption does not mention it")
 
     # -- a person in the shot (the faces stage's flag; kept, flagged for review)

@@ -44,7 +44,11 @@ class HashesConfig:
     # Transformed views, any of mirror, rot90, rot180, rot270, mirror_rot90, mirror_rot180,
     # mirror_rot270. No perceptual hash survives a flip (Zauner 2010); mirrored copies count as
     # copies for training (common practice). Each transform adds as many views as the crops.
-    transforms: list[str] = field(default_factory=lambda: ["mirror"])
+    # Off by default: a mirrored whole picture can land within the radius of a crop of a different
+    # shot of the same simple layout (measured: 2 false merges among 324 product shots on plain
+    # backdrops, none among the public photos of bench/neardup_quality.py). A false merge loses a
+    # picture, a missed mirror keeps one extra; turn it on with ["mirror"] for varied photos.
+    transforms: list[str] = field(default_factory=list)
     # Crops hashed for each transform: "all" (every crop above) or "whole" (the whole picture only).
     # Measured on public photos (bench/neardup_quality.py, mirror): "whole" makes 16 codes instead
     # of 28 and keeps different photos 12 bits apart instead of 10; mirrored copies are found at
