@@ -288,7 +288,7 @@ class TorchTower(Tower):
         """Text features; `trim` runs the forward pass on tokens cut to the batch's longest caption."""
         import torch
 
-        from .clip import _encode_text_trimmed
+        from .text import _encode_text_trimmed
 
         with torch.inference_mode():
             t = torch.as_tensor(tokens).to(self.device)
@@ -388,7 +388,7 @@ def _export_entry(lm: Any, kind: str, fmt: str, cache_dir: str | None, calibrati
             feeds = [{"pixels": x[i:i + FEED_BATCH]} for i in range(0, len(x), FEED_BATCH)]
         else:
             tokens = lm.tokenize(fit_captions)
-            from .clip import token_lengths
+            from .text import token_lengths
 
             lengths = token_lengths(tokens).numpy()
             # One caption per feed at its own length: padding never widens the fitted ranges.
@@ -459,7 +459,7 @@ def max_cosine_gap(a: np.ndarray, b: np.ndarray) -> float:
 
 def _text_batches(lm: Any, captions: list[str], batch: int) -> list[np.ndarray]:
     """Token batches as encode_texts forms them (sorted by length, trimmed when exact)."""
-    from .clip import token_lengths
+    from .text import token_lengths
 
     tokens = lm.tokenize(captions)
     lengths = token_lengths(tokens).numpy()

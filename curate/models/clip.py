@@ -22,6 +22,7 @@ from pathlib import Path
 from typing import Any
 
 from ..errors import ModelError
+from .text import _encode_text_trimmed, _text_parts, token_lengths  # noqa: F401
 
 log = logging.getLogger(__name__)
 
@@ -416,56 +417,6 @@ def pil_steps(preprocess_cfg: dict) -> list:
     if cut is None or names[cut + 1:] != ["Normalize"]:
         raise ModelError(f"unexpected open_clip eval transform {names}; cannot split it for workers")
     return steps[:cut]
-
-
-def token_lengths(tokens: Any) -> Any:
-    """Per row: index of the last non-padding token + 1 (padding id 0, SimpleTokenizer's)."""
-    import torch
-
-    pos = torch.arange(1, tokens.shape[1] + 1, dtype=torch.long)
-    return ((tokens != 0).long() * pos).max(dim=1).values
-
-
-def _text_parts(model: Any) -> dict | None:
-    """The text tower's pieces when its layout allows exact trimming, else None."""
-    import open_clip
-    from open_clip.transformer import TextTransformer
-
-    if isinstance(model, open_clip.CLIP):
-        parts = dict(tok=model.token_embedding, pos=model.positional_embedding, transformer=model.transformer,
-                     ln=model.ln_final, proj=model.text_projection, mask=model.attn_mask,
-                     pool=model.text_pool_type, eos=getattr(model, "text_eos_id", None))
-    elif isinstance(getattr(model, "text", None), TextTransformer):
-        t = model.text
-        if t.cls_emb is not None or getattr(t, "use_pad_mask", False):
-            return None
-        parts = dict(tok=t.token_embedding, pos=t.positional_embedding, transformer=t.transformer,
-                     ln=t.ln_final, proj=t.text_projection, mask=t.attn_mask, pool=t.pool_type, eos=t.eos_id)
-    else:
-        return None
-    # Causal mask: a token never attends to later (padding) ones. Pooling must read a token at or
-    # before the end token ('argmax' = end token for SimpleTokenizer, 'first', 'eos').
-    if parts["mask"] is None or parts["pool"] not in ("argmax", "first", "eos"):
-        return None
-    return parts
-
-
-def _encode_text_trimmed(model: Any, tokens: Any) -> Any:
-    """open_clip's text forward pass on a batch cut to its longest sequence."""
-    import torch.nn as nn
-    from open_clip.transformer import text_global_pool
-
-    p = _text_parts(model)
-    seq = tokens.shape[1]
-    cast = p["transformer"].get_cast_dtype()
-    x = p["tok"](tokens).to(cast) + p["pos"][:seq].to(cast)
-    x = p["transformer"](x, attn_mask=p["mask"][:seq, :seq])
-    x = p["ln"](x)
-    x = text_global_pool(x, tokens, p["pool"], eos_token_id=p["eos"])
-    proj = p["proj"]
-    if proj is not None:
-        x = proj(x) if isinstance(proj, nn.Module) else x @ proj
-    return x
 
 
 def trimming_is_exact(lm: LoadedModel, tol: float = 1e-4) -> bool:

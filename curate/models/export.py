@@ -139,7 +139,7 @@ def _tower_module(net: Any, tower: str, trim_text: bool) -> Any:
     """An nn.Module wrapping one tower: image (pixels -> features) or text (tokens -> features)."""
     import torch
 
-    from .clip import _encode_text_trimmed
+    from .text import _encode_text_trimmed
 
     class Image(torch.nn.Module):
         def __init__(self, m: Any):
