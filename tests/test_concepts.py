@@ -297,6 +297,7 @@ def demo_corpus_scores(sample_corpus):
     return rows, out
 
 
+@pytest.mark.slow
 @pytest.mark.xfail(strict=True, reason="the shipped demo model was trained before the watermarked scenes were "
                    "added; a retrain with tools/train_demo_model.py did not learn the concept (held-out AUC 0.486), "
                    "so the probe stays quiet and this recall bar is not met yet")
