@@ -33,7 +33,7 @@ def _rss_mb() -> float:
 
 def synth(n: int, seed: int = 0) -> pa.Table:
     """The compact columns of n samples: ids, caption keys (2% on a template caption), sha256 (1%
-    exact copies), 7 perceptual codes per sample (5% near copies within 4 bits), sizes, quality,
+    exact copies), 7 perceptual codes and 7 check codes per sample (5% near copies within 4 bits), sizes, quality,
     true and shuffled agreement cosines."""
     rng = np.random.default_rng(seed)
     ids = np.char.mod("%016x", rng.integers(0, 2**62, n, dtype=np.int64)).astype(object)
@@ -50,7 +50,13 @@ def synth(n: int, seed: int = 0) -> pa.Table:
     for _ in range(4):
         flips |= np.uint64(1) << rng.integers(0, 64, len(near)).astype(np.uint64)
     codes[near] = codes[src] ^ flips[:, None]
-    k = 7
+    # Check codes (a second hash family per view, [hashes] check): near copies keep theirs within
+    # a few bits too, so they pass the check radius.
+    base2 = rng.integers(0, 2**63, (n, 1), dtype=np.int64).astype(np.uint64) * np.uint64(2) + np.uint64(1)
+    checks = np.repeat(base2, 7, axis=1) ^ rng.integers(0, 2**10, (n, 7), dtype=np.int64).astype(np.uint64)
+    checks[near] = checks[src] ^ flips[:, None]
+    codes = np.concatenate([codes, checks], axis=1)
+    k = 14
     code_col = pa.FixedSizeListArray.from_arrays(pa.array(codes.reshape(-1), pa.uint64()), k)
     agree = np.clip(rng.normal(0.31, 0.06, n), -1, 1).astype(np.float32)
     shuffled = np.clip(rng.normal(0.12, 0.05, n), -1, 1).astype(np.float32)

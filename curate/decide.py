@@ -15,7 +15,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from .checks import ACTIONS, family
+from .checks import ACTIONS, CHECKS_TYPE, family
 from .errors import ConfigError
 from .stages.base import CheckSpec, all_checks, spec_for
 
@@ -170,11 +170,21 @@ def _first_per_row(parents: np.ndarray, keys: np.ndarray) -> np.ndarray:
     return np.sort(first)
 
 
+def _typed(col: Any) -> pa.Array:
+    """A check column as one array of CHECKS_TYPE (a column whose optional fields were all null was
+    inferred with null-typed fields)."""
+    if isinstance(col, pa.ChunkedArray):
+        col = col.combine_chunks()
+    elif not isinstance(col, pa.Array):  # Python rows (library callers)
+        return pa.array(col, type=CHECKS_TYPE)
+    return col if col.type == CHECKS_TYPE else col.cast(CHECKS_TYPE)
+
+
 def verdict(stage_checks: Sequence[tuple[str, pa.ChunkedArray | pa.Array]], skipped: dict[str, np.ndarray],
             skip_codes: dict[str, list[str]], actions: Actions, n: int) -> Verdict:
     """`stage_checks`: (stage, its check column) in plan order. `skipped[stage]`: rows the stage did not see
     because an earlier check dropped them; `skip_codes[stage]`: that stage's codes, listed as skipped."""
-    cols = [(stage, c.combine_chunks() if isinstance(c, pa.ChunkedArray) else c) for stage, c in stage_checks]
+    cols = [(stage, _typed(c)) for stage, c in stage_checks]
     reviewed_keep = rows_with([c for _, c in cols], actions, "keep", n, lambda code: code == OVERRIDE)
     first_reason = np.full(n, None, dtype=object)
     parts: list[tuple[np.ndarray, pa.StructArray]] = []
