@@ -135,7 +135,7 @@ def main() -> int:
              for label, rows in (("100M", 100_000_000), ("1B", 1_000_000_000))}
     assumes = ("linear in rows from the largest measured run: every step here is a sort, a hash join or an "
                "exact Hamming search whose candidate pairs grow with the planted copies; the verdict is a "
-               "per-row Python loop; memory is the compact columns held at once (about peak/rows bytes each)")
+               "columnar pass over the check lists; memory is the compact columns held at once (about peak/rows bytes each)")
     out = {"runs": results, **extra, "assumes": assumes}
     if a.json:
         print(json.dumps(out))
