@@ -11,9 +11,7 @@ Probe flags are screening aids for human review: a probe knows only what its lab
 """
 from __future__ import annotations
 
-import csv
 import hashlib
-import io
 import json
 import math
 import re
@@ -26,6 +24,7 @@ import pyarrow as pa
 
 from . import __version__
 from .errors import ConfigError, InputError, ModelError
+from .rowfile import read_rows
 
 FORMAT = "curate-probe"
 FORMAT_VERSION = 1
@@ -267,7 +266,7 @@ def read_labels(path: str | Path) -> list[Label]:
         text = raw.decode("utf-8-sig")
     except UnicodeDecodeError as e:
         raise ConfigError(f"labels file {p} is not UTF-8 text", key="--labels") from e
-    rows = _jsonl(text, p) if p.suffix.lower() in (".jsonl", ".ndjson", ".json") else _csv(text, p)
+    rows = read_rows(text, p, "labels", "label", "--labels")
     out: list[Label] = []
     for line, row in rows:
         key_by = next(((str(row[k]).strip(), k) for k in ("sample_id", "source")
@@ -286,35 +285,6 @@ def _label_value(v: Any, p: Path, line: int) -> int:
     if isinstance(v, int) and not isinstance(v, bool) and v in (0, 1):
         return int(v)
     raise ConfigError(f"labels file {p}, line {line}: label must be 0 or 1, got {v!r}", key="--labels")
-
-
-def _csv(text: str, p: Path) -> list[tuple[int, dict]]:
-    reader = csv.DictReader(io.StringIO(text), strict=True)
-    names = set(reader.fieldnames or ())
-    if "label" not in names or not {"sample_id", "source"} & names:
-        raise ConfigError(f"labels file {p}: the header needs label and sample_id or source", key="--labels")
-    try:
-        return [(reader.line_num, dict(row)) for row in reader]
-    except csv.Error as e:
-        raise ConfigError(f"labels file {p}, line {reader.line_num}: {e}", key="--labels") from e
-
-
-def _jsonl(text: str, p: Path) -> list[tuple[int, dict]]:
-    out = []
-    for i, line in enumerate(text.splitlines(), 1):
-        if not line.strip():
-            continue
-        try:
-            row = json.loads(line)
-        except ValueError as e:
-            raise ConfigError(f"labels file {p}, line {i}: not JSON ({e})", key="--labels") from e
-        if not isinstance(row, dict):
-            raise ConfigError(f"labels file {p}, line {i}: expected an object", key="--labels")
-        out.append((i, row))
-    return out
-
-
-# ------------------------------------------------------------------ a run's embeddings
 
 
 @dataclass

@@ -19,7 +19,8 @@ PKG = ROOT / "curate"
 # Layers, lowest first: a module may import modules of its own layer or below, never above
 # (DESIGN: cli -> api -> engines -> plan/stages -> sources, similarity, models, workdir, ledger, config).
 LAYERS: list[tuple[str, ...]] = [
-    ("curate", "curate.errors", "curate.checks", "curate.progress", "curate.terminal", "curate.clip_tokens"),
+    ("curate", "curate.errors", "curate.checks", "curate.progress", "curate.terminal", "curate.clip_tokens",
+     "curate.rowfile"),
     ("curate.config", "curate.workdir", "curate.plugins", "curate.layout"),
     ("curate.sources", "curate.imaging", "curate.similarity", "curate.models", "curate.pii",
      "curate.ledger", "curate.report", "curate.probes"),

@@ -10,10 +10,7 @@ nothing else. A decision naming no sample of the input is reported in the run's 
 """
 from __future__ import annotations
 
-import csv
 import hashlib
-import io
-import json
 import logging
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -22,6 +19,7 @@ import pyarrow as pa
 
 from ..checks import CHECKS_TYPE, check
 from ..errors import ConfigError
+from ..rowfile import read_rows
 from .base import CheckSpec, ConfigView, StageContext, checks_column, stage
 
 log = logging.getLogger("curate")
@@ -66,7 +64,7 @@ def read_decisions(path: str) -> list[Decision]:
         text = raw.decode("utf-8-sig")
     except UnicodeDecodeError as e:
         raise ConfigError(f"decisions file {path} is not UTF-8 text", key="review.decisions") from e
-    rows = _jsonl(text, path) if p.suffix.lower() in (".jsonl", ".json", ".ndjson") else _csv(text, path)
+    rows = read_rows(text, path, "decisions", "decision", "review.decisions")
     out = []
     for line, row in rows:
         key_by = next(((str(row[k]).strip(), k) for k in ("sample_id", "source") if str(row.get(k) or "").strip()),
@@ -79,33 +77,6 @@ def read_decisions(path: str) -> list[Decision]:
             raise ConfigError(f"decisions file {path}, line {line}: decision must be keep or drop, got {decision!r}",
                               key="review.decisions")
         out.append(Decision(key_by[0], key_by[1], decision == "keep", str(row.get("note") or "").strip(), line))
-    return out
-
-
-def _csv(text: str, path: str) -> list[tuple[int, dict]]:
-    reader = csv.DictReader(io.StringIO(text), strict=True)
-    if not reader.fieldnames or not {"decision"} <= set(reader.fieldnames) or \
-            not {"sample_id", "source"} & set(reader.fieldnames):
-        raise ConfigError(f"decisions file {path}: the header needs decision and sample_id or source",
-                          key="review.decisions")
-    try:
-        return [(reader.line_num, dict(row)) for row in reader]
-    except csv.Error as e:
-        raise ConfigError(f"decisions file {path}, line {reader.line_num}: {e}", key="review.decisions") from e
-
-
-def _jsonl(text: str, path: str) -> list[tuple[int, dict]]:
-    out = []
-    for i, line in enumerate(text.splitlines(), 1):
-        if not line.strip():
-            continue
-        try:
-            row = json.loads(line)
-        except ValueError as e:
-            raise ConfigError(f"decisions file {path}, line {i}: not JSON ({e})", key="review.decisions") from e
-        if not isinstance(row, dict):
-            raise ConfigError(f"decisions file {path}, line {i}: expected an object", key="review.decisions")
-        out.append((i, row))
     return out
 
 

@@ -45,7 +45,7 @@ class SplitConfig:
     eval_fraction: float = 0.0
     # Seed of the per-group draw; the same input and seed always give the same split.
     seed: int = 0
-    # Largest allowed |eval share - eval_fraction| (the target: +-2 percentage points).
+    # Largest allowed |eval share - eval_fraction| (common practice: within 2 percentage points).
     share_tolerance: float = 0.02
     # Optional key of the source table's `meta` JSON (manifest column) to split each value apart.
     stratify: str = ""
