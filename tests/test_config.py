@@ -56,6 +56,22 @@ def test_relative_input_path_is_relative_to_the_file(tmp_path):
     assert cfg.input.path == str((tmp_path / "sub" / "imgs").resolve())
 
 
+def test_paths_given_on_the_command_line_are_relative_to_the_working_directory(tmp_path, monkeypatch):
+    # Common practice for command-line tools: a path typed on the command line means what the shell
+    # around it means, whatever folder the config file lives in.
+    (tmp_path / "conf").mkdir()
+    (tmp_path / "work" / "bench").mkdir(parents=True)
+    f = tmp_path / "conf" / "c.toml"
+    f.write_text("[input]\npath = 'in_file'\n[split]\neval_sets = ['bench_file']\n")
+    monkeypatch.chdir(tmp_path / "work")
+    cfg = load_config(f, ["input.path=imgs", 'split.eval_sets=["bench"]'], config_sections())
+    assert cfg.input.path == str((tmp_path / "work" / "imgs").resolve())
+    assert cfg.split.eval_sets == [str(tmp_path / "work" / "bench")]
+    # what the command line leaves alone stays relative to the file
+    assert load_config(f, ["split.eval_sets=[]"], config_sections()).input.path == str(
+        (tmp_path / "conf" / "in_file").resolve())
+
+
 @pytest.mark.parametrize("preset", sorted(api.PRESETS))
 def test_init_writes_a_loadable_commented_config(tmp_path, preset):
     p = api.init(tmp_path / "c.toml", preset=preset)
