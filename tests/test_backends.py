@@ -9,7 +9,10 @@ Tolerances, per precision (1 - cos of embeddings; largest change of any image-ca
 - fp32 on another runtime: 1e-5 / 1e-5. Only the order of float32 additions differs; the
   measurement table in /work/shared/FACTS.md found 1e-7 for OpenVINO fp32 (100x headroom).
 - bf16: 5e-4 / 0.005. FACTS.md measured 4.9e-5..9.1e-5 (OpenVINO bf16, ViT-B-32) and an agreement
-  change <= 0.0021 for bf16; bounds rounded up about 2-10x.
+  change <= 0.0021 for bf16; bounds rounded up about 2-10x. The demo model's agreement bound is
+  0.015 instead: its 64 px, 128-wide towers stored in float16 moved cosines by 0.0073 (torch bf16)
+  and 0.0079 (OpenVINO bf16) on a Zen 4 CPU with AVX-512 BF16 (measured by this test), rounded up
+  about 2x. `auto`'s default tolerance (0.005) therefore keeps the demo model off bf16.
 - int8 (static, calibrated): 1 - cos <= 0.01 per tower (FACTS.md: 7.9e-3 for static int8 of the
   image tower, rounded up); agreement with the int8 image tower and the fp32 text tower <= 0.02
   (0.017 measured for static int8 on the image tower, same source, rounded up).
@@ -36,6 +39,7 @@ TOL = {  # precision -> (max 1 - cos per tower, max agreement change); sources i
     "int8": (0.01, 0.02),
 }
 BATCH_TOL = {"fp32": 1e-5, "bf16": 1e-5, "int8": 1e-4}
+DEMO_AGREEMENT_TOL = {"bf16": 0.015}  # the demo model's own bound (module docstring)
 
 # name -> caption, for the public photos below
 PHOTOS = {
@@ -118,8 +122,9 @@ def photos() -> dict:
 class Setup:
     """A loaded model, its calibration batch and every offered path's towers, built once."""
 
-    def __init__(self, lm, photos, cache_dir, crops_per_photo):
+    def __init__(self, lm, photos, cache_dir, crops_per_photo, agreement_tol=None):
         self.lm = lm
+        self.agreement_tol = agreement_tol or {}
         self.cache_dir = cache_dir
         imgs = model_pixels(lm, photos, crops_per_photo)
         caps = list(PHOTOS.values()) + EXTRA_CAPTIONS
@@ -150,7 +155,8 @@ class Setup:
 
 @pytest.fixture(scope="module")
 def demo(photos, export_cache):
-    return Setup(clip.load_model("demo", device="cpu"), photos, export_cache, crops_per_photo=2)
+    return Setup(clip.load_model("demo", device="cpu"), photos, export_cache, crops_per_photo=2,
+                 agreement_tol=DEMO_AGREEMENT_TOL)
 
 
 @pytest.fixture(scope="module")
@@ -179,6 +185,7 @@ def _check_accuracy(setup, backend, precision):
     ref_i, ref_t = setup.embed("torch", "fp32")
     img, txt = setup.embed(backend, precision)
     cos_tol, agree_tol = TOL[precision]
+    agree_tol = setup.agreement_tol.get(precision, agree_tol)
     gaps = backends.max_cosine_gap(img, ref_i), backends.max_cosine_gap(txt, ref_t)
     assert max(gaps) <= cos_tol, f"{backend}-{precision}: 1 - cos (image, text) = {gaps}"
     # int8 agreement is judged with the fp32 text tower, the combination auto may pick (module docstring)

@@ -261,8 +261,31 @@ class Tower:
         raise NotImplementedError
 
 
+# Rows per forward pass of a reduced-precision torch tower. A bf16 matrix product's rounding depends
+# on the kernel oneDNN picks for the product's shape: one caption's text embedding moved by up to
+# 2.2e-3 per component between a batch of one and a batch of two (measured on a Zen 4 CPU with
+# AVX-512 BF16, torch 2.14). Every pass therefore runs this many rows, padded with copies of the
+# last row, so an item's embedding never depends on its batch-mates.
+FIXED_ROWS = 16
+
+
+def _fixed_rows(x: Any, forward: Any) -> Any:
+    """forward(x) computed FIXED_ROWS rows at a time, the last pass padded; padding rows dropped."""
+    import torch
+
+    outs = []
+    for start in range(0, x.shape[0], FIXED_ROWS):
+        part = x[start:start + FIXED_ROWS]
+        k = part.shape[0]
+        if k < FIXED_ROWS:
+            part = torch.cat([part, part[-1:].expand(FIXED_ROWS - k, *part.shape[1:])])
+        outs.append(forward(part)[:k])
+    return torch.cat(outs)
+
+
 class TorchTower(Tower):
-    """Eager open_clip tower on a torch device and dtype (fp32 reference, bf16, fp16 on CUDA)."""
+    """Eager open_clip tower on a torch device and dtype (fp32 reference, bf16, fp16 on CUDA).
+    Reduced precision runs fixed shapes (FIXED_ROWS) so results do not depend on batch composition."""
 
     def __init__(self, net: Any, kind: str, device: str, precision: str, trim_text: bool):
         import torch
@@ -282,7 +305,10 @@ class TorchTower(Tower):
 
         with torch.inference_mode():
             t = torch.as_tensor(x).to(self.device, self.dtype)
-            return self.net.encode_image(t).float().cpu().numpy()
+            return self._forward(t, self.net.encode_image).float().cpu().numpy()
+
+    def _forward(self, x: Any, forward: Any) -> Any:
+        return forward(x) if self.precision == "fp32" else _fixed_rows(x, forward)
 
     def encode(self, tokens: Any, trim: bool) -> np.ndarray:
         """Text features; `trim` runs the forward pass on tokens cut to the batch's longest caption."""
@@ -292,7 +318,7 @@ class TorchTower(Tower):
 
         with torch.inference_mode():
             t = torch.as_tensor(tokens).to(self.device)
-            out = _encode_text_trimmed(self.net, t) if trim else self.net.encode_text(t)
+            out = self._forward(t, (lambda b: _encode_text_trimmed(self.net, b)) if trim else self.net.encode_text)
             return out.float().cpu().numpy()
 
     def from_uint8(self, pixels: Any, mean: Any, std: Any) -> np.ndarray:
@@ -305,7 +331,7 @@ class TorchTower(Tower):
             self._std = torch.tensor(std, dtype=torch.float32, device=self.device).view(1, 3, 1, 1)
         with torch.inference_mode():
             x = u8.permute(0, 3, 1, 2).float().div_(255).sub_(self._mean).div_(self._std)
-            return self.net.encode_image(x.to(self.dtype)).float().cpu().numpy()
+            return self._forward(x.to(self.dtype), self.net.encode_image).float().cpu().numpy()
 
 
 class OrtTower(Tower):
@@ -457,21 +483,12 @@ def max_cosine_gap(a: np.ndarray, b: np.ndarray) -> float:
     return float(np.max(1.0 - np.sum(normalised(a) * normalised(b), axis=1)))
 
 
-def _text_batches(lm: Any, captions: list[str], batch: int) -> list[np.ndarray]:
-    """Token batches as encode_texts forms them (sorted by length, trimmed when exact)."""
-    from .text import token_lengths
+def _text_batches(lm: Any, captions: list[str], batch: int) -> list[tuple[np.ndarray, np.ndarray]]:
+    """Token batches exactly as encode_texts forms them (text.token_batches)."""
+    from .text import token_batches
 
-    tokens = lm.tokenize(captions)
-    lengths = token_lengths(tokens).numpy()
-    order = np.argsort(lengths, kind="stable")
-    out = []
-    for i in range(0, len(order), batch):
-        idx = order[i:i + batch]
-        sub = tokens[idx]
-        if lm.trim_text:
-            sub = sub[:, : max(2, int(lengths[idx].max()))]
-        out.append((idx, sub.numpy().astype(np.int64)))
-    return out
+    return [(idx, sub.numpy().astype(np.int64)) for idx, sub in token_batches(lm.tokenize(captions), batch,
+                                                                              lm.trim_text)]
 
 
 def run_tower(lm: Any, tower: Tower, inputs: Any, batch: int) -> np.ndarray:

@@ -22,7 +22,7 @@ from pathlib import Path
 from typing import Any
 
 from ..errors import ModelError
-from .text import _encode_text_trimmed, _text_parts, token_lengths  # noqa: F401
+from .text import _encode_text_trimmed, _text_parts, token_batches, token_lengths  # noqa: F401
 
 log = logging.getLogger(__name__)
 
@@ -360,12 +360,12 @@ class LoadedModel:
     def encode_texts(self, texts: list[str], batch_size: int, trim: bool | None = None) -> Any:
         """Captions -> float32 numpy [N, D], L2-normalised.
 
-        Captions are sorted by token length so each batch holds similar lengths; a batch is cut to
-        its longest caption when trimming is exact for this model (causal mask, pooled at the end
-        token: padding after it never reaches the pooled output), else padded to the full context.
+        Captions are sorted by token length (text.token_batches). When trimming is exact for this
+        model (causal mask, pooled at the end token: padding after it never reaches the pooled
+        output), each caption is encoded cut to its own length rounded up to a step, so its
+        embedding does not depend on its batch-mates; else batches are padded to the full context.
         """
         import numpy as np
-        import torch
 
         from .backends import normalised
 
@@ -374,15 +374,8 @@ class LoadedModel:
         if n == 0:
             return np.zeros((0, self.embed_dim()), dtype=np.float32)
         tower = self._tower("text")
-        tokens = self.tokenize(texts)
-        lengths = token_lengths(tokens)
-        order = np.argsort(lengths.numpy(), kind="stable")
         out = np.empty((n, self.embed_dim()), dtype=np.float32)
-        for i in range(0, n, batch_size):
-            idx = order[i:i + batch_size]
-            sub = tokens[torch.as_tensor(idx)]
-            if trim:
-                sub = sub[:, : max(2, int(lengths[torch.as_tensor(idx)].max()))]
+        for idx, sub in token_batches(self.tokenize(texts), batch_size, trim):
             if tower.backend == "torch":
                 feats = tower.encode(sub, trim)
             else:
