@@ -251,6 +251,8 @@ def _cmd_leakcheck(a: argparse.Namespace) -> int:
     for p in pairs:
         d = f"cosine {p['cosine']}" if p["signal"] == "semantic" else f"{p['distance']:>2} bits"
         print(f"{d}  {_e(p['a'])}  <->  {_e(p['b'])}")
+    for note in res["notes"]:
+        print(f"note: {_e(note)}")
     for side in ("a", "b"):
         if res[f"{side}_unreadable"]:
             print(f"note: {len(res[side + '_unreadable'])} image(s) of {side.upper()} could not be decoded")
@@ -275,7 +277,8 @@ def _add_leakcheck(sub: Any) -> None:
                     help="also match CLIP embeddings with cosine >= COSINE (needs --model or --config)")
     lk.add_argument("--model", default="", help="CLIP model for --semantic (open_clip name or demo)")
     lk.add_argument("--pretrained", default="", help="pretrained tag or checkpoint for --model")
-    lk.add_argument("--config", help="pipeline config whose [inspect]/[hashes]/[embed] settings to use")
+    lk.add_argument("--config", help="pipeline config whose [inspect]/[hashes]/[embed] settings to use (embed "
+                                     "backend/precision auto or int8 calibrate on its [input], as a run does)")
     lk.add_argument("--html", help="write a page with each pair's thumbnails side by side")
     lk.add_argument("--cache-dir", help="keep each set's hashes here for the next check")
     lk.add_argument("--workers", type=int, default=0, help="hashing processes; 0 = one per CPU core")

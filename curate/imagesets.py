@@ -567,22 +567,23 @@ class SetEmbeddings:
     emb: np.ndarray  # (n, D) float32, L2-normalised; zero rows where `ok` is False
     ok: np.ndarray
     computed: int
+    path: dict = field(default_factory=dict)  # the model's inference path (curate.stages.embed.inference_path)
 
 
-def set_embeddings(images: ImageSet, embed_cfg: Any, *, cache_dir: str | None = None) -> SetEmbeddings:
-    """CLIP image embeddings of every image, made exactly as the embed stage makes them
-    (same model, decode and preprocessing), cached per model identity."""
-    import torch
-
+def set_embeddings(images: ImageSet, view: Any, *, cache_dir: str | None = None) -> SetEmbeddings:
+    """CLIP image embeddings of every image, made exactly as the embed stage makes them: the model on the
+    run's inference path (curate.stages.embed.load: same backend, precision, int8 scales and `auto` pick),
+    the same decode and preprocessing. `view`: a config view with the [embed] and [input] sections.
+    Cached per weights, image-tower path (with the calibration digest when int8) and decode rule."""
     from .models import clip
-    from .stages.embed import decode_for_model
+    from .stages import embed
 
-    lm = clip.load_model(embed_cfg.model, embed_cfg.pretrained, device=embed_cfg.device,
-                         cache_dir=embed_cfg.cache_dir or None, quantize=embed_cfg.quantize)
-    ident = clip.identity(embed_cfg.model, embed_cfg.pretrained, embed_cfg.cache_dir or None)
-    draft_px = 2 * max(lm.image_size) if embed_cfg.jpeg_draft else 0
+    cfg = view.section("embed")
+    lm = embed.load(view)
+    path = embed.inference_path(lm)
+    draft_px = embed.draft_size(lm, cfg)
     steps = lm.pil_steps()
-    batch = max(1, int(embed_cfg.batch_size))
+    batch = max(1, int(cfg.batch_size))
 
     def compute(idx: list[int]) -> list[tuple[Any, str | None]]:
         out: list[tuple[Any, str | None]] = []
@@ -592,18 +593,26 @@ def set_embeddings(images: ImageSet, embed_cfg: Any, *, cache_dir: str | None = 
             pixels, where = [], []
             for k, data in enumerate(images.read(ch)):
                 try:
-                    pixels.append(decode_for_model(data, steps, draft_px))
+                    px = embed.decode_for_model(data, steps, draft_px)
+                    if px.shape != (*lm.image_size, 3):
+                        raise ValueError(f"preprocessed to {px.shape}, expected {(*lm.image_size, 3)}")
+                    pixels.append(px)
                     where.append(k)
                 except Exception as e:  # noqa: BLE001 - one bad image is its own reason
                     res[k] = (None, f"decode_error: {type(e).__name__}")
             if pixels:
-                emb = lm.encode_images(torch.from_numpy(np.stack(pixels)))
+                emb = lm.encode_images(np.stack(pixels))
                 for k, e in zip(where, emb):
                     res[k] = (e.astype(np.float32).tolist(), None)
             out.extend(res)
         return out
 
-    key = {"model": ident, "quantize": bool(embed_cfg.quantize), "jpeg_draft": bool(embed_cfg.jpeg_draft)}
+    # Only the image tower makes these numbers: its path, and its int8 scales' calibration batch.
+    tower = {"image": path["image"]}
+    if path["image"].endswith("-int8"):
+        tower["calibration_sha256"] = path["calibration_sha256"]
+    key = {"model": clip.identity(cfg.model, cfg.pretrained, cfg.cache_dir or None), "path": tower,
+           "quantize": bool(cfg.quantize), "draft_px": draft_px}
     values, _problems, computed = _cached_map(images, "emb", key, cache_dir, compute, pa.list_(pa.float32()))
     dim = next((len(v) for v in values if v is not None), 0)
     emb = np.zeros((len(images), dim), dtype=np.float32)
@@ -612,7 +621,7 @@ def set_embeddings(images: ImageSet, embed_cfg: Any, *, cache_dir: str | None = 
         if v is not None:
             emb[i] = v
             ok[i] = True
-    return SetEmbeddings(images, emb, ok, computed)
+    return SetEmbeddings(images, emb, ok, computed, path)
 
 
 # Split's eval-set check still calls this name; the search itself is curate.similarity's.

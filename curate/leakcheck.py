@@ -6,7 +6,8 @@ mirror or turns the settings ask for); the search is exact (multi-index Hamming 
 curate.similarity.cross_set_pairs, equal to brute force), so "no pairs" means no pair within the
 radius exists, not that none was found by sampling. Each pair names the transform that matched.
 With a semantic cosine threshold and a CLIP model, pairs of near-identical embeddings are
-reported as well.
+reported as well, encoded as the embed stage encodes (curate.stages.embed.load) on the config's
+inference path; see `_embed_view` for what `auto` and int8 calibrate on outside a run.
 """
 from __future__ import annotations
 
@@ -67,10 +68,18 @@ def leakcheck(a: str | Path, b: str | Path, *, radius: int | None = None, semant
     check_r = getattr(getattr(cfg, "neardup", None), "check_radius", similarity.CHECK_RADIUS)
     pairs = cross_set_pairs(codes[0], codes[1], r, int(check_r))
     timings["search"] = time.perf_counter() - t
+    notes: list[str] = []
+    path = None
     if semantic:
+        from .stages.embed import inference_path, load
+
         t = time.perf_counter()
-        ecfg = _embed_config(cfg, model, pretrained)
-        pairs += _semantic_pairs(sets, ecfg, float(semantic), cache, pairs)
+        view = _embed_view(cfg, model, pretrained, notes)
+        lm = load(view)  # set_embeddings encodes with this same model
+        if "fallback" in lm.choice:
+            notes.append(f"embed backend/precision auto fell back to torch fp32: {lm.choice['fallback']}")
+        path = inference_path(lm)
+        pairs += _semantic_pairs(sets, view, float(semantic), cache, pairs)
         timings["semantic"] = time.perf_counter() - t
     pairs.sort(key=lambda p: (p["signal"] != "phash", p["distance"], p["a"], p["b"]))
     out = {
@@ -84,6 +93,8 @@ def leakcheck(a: str | Path, b: str | Path, *, radius: int | None = None, semant
         "hashed": codes[0].computed + codes[1].computed,
         "radius": r,
         "semantic": float(semantic),
+        "semantic_path": path,
+        "notes": notes,
         "timings": {k: round(v, 4) for k, v in timings.items()},
     }
     if html:
@@ -120,16 +131,37 @@ def _config(config: str | Path | None) -> Any:
     return load_config(config, (), config_sections())
 
 
-def _embed_config(cfg: Any, model: str, pretrained: str) -> Any:
-    """The config's [embed] section, with `model`/`pretrained` taking precedence when given."""
+def _embed_view(cfg: Any, model: str, pretrained: str, notes: list[str]) -> Any:
+    """The config's [embed] and [input] sections (built-in defaults without a config), `model`/`pretrained`
+    taking precedence when given, as the view curate.stages.embed.load reads.
+
+    The inference path is the config's [embed] backend and precision. `auto` and int8 calibrate as a run
+    does, on the first images of the config's [input] path, so with the run's own config the embeddings
+    are the run's (same calibration batch: the same pick and the same int8 scales). Without an input
+    path there is nothing to calibrate on: `auto` uses torch fp32, the reference, and says so in `notes`;
+    int8 is refused."""
     import dataclasses
 
-    from .stages.embed import EmbedConfig
+    from .config import InputConfig, PipelineConfig
+    from .stages.base import ConfigView
+    from .stages.embed import LOAD_SECTIONS, EmbedConfig
 
-    base = cfg.embed if cfg is not None and "embed" in cfg.names() else EmbedConfig()
+    have = cfg.names() if cfg is not None else []
+    ecfg = cfg.embed if "embed" in have else EmbedConfig()
     if model:
-        base = dataclasses.replace(base, model=model, pretrained=pretrained)
-    return base
+        ecfg = dataclasses.replace(ecfg, model=model, pretrained=pretrained)
+    inp = cfg.input if "input" in have else InputConfig()
+    auto = "auto" in (ecfg.backend, ecfg.precision)
+    if (auto or ecfg.precision == "int8") and not inp.path:
+        if not auto:
+            raise ConfigError("embed.precision = 'int8' fits its scales on the first images of a run's input: "
+                              "give --config with the run's [input] path, or set embed.precision = 'fp32'",
+                              key="embed.precision")
+        notes.append("embed backend/precision auto calibrates on a run's input, and no [input] path was given "
+                     "(--config): semantic matching used torch fp32, the reference")
+        ecfg = dataclasses.replace(ecfg, backend="torch", precision="fp32")
+    sections = PipelineConfig({"embed": ecfg, "input": inp}, origin=getattr(cfg, "origin", None))
+    return ConfigView(sections, LOAD_SECTIONS, "leakcheck")
 
 
 def _unreadable(sc: imagesets.SetCodes) -> list[dict]:
@@ -151,9 +183,9 @@ def cross_set_pairs(a: imagesets.SetCodes, b: imagesets.SetCodes, radius: int,
     return out
 
 
-def _semantic_pairs(sets: list, embed_cfg: Any, threshold: float, cache: str | None,
+def _semantic_pairs(sets: list, view: Any, threshold: float, cache: str | None,
                     seen: list[dict]) -> list[dict]:
-    ea, eb = (imagesets.set_embeddings(s, embed_cfg, cache_dir=cache) for s in sets)
+    ea, eb = (imagesets.set_embeddings(s, view, cache_dir=cache) for s in sets)
     ra, rb = np.nonzero(ea.ok)[0], np.nonzero(eb.ok)[0]
     if not ra.size or not rb.size:
         return []

@@ -145,7 +145,7 @@ def test_family_defaults_to_quarantine_and_routes_there():
     v = decide.verdict([("concepts", pa.array([[rec]], type=CHECKS_TYPE))], {}, {}, actions, 1)
     assert list(v.kept) == [True] and list(v.quarantined) == [True] and v.flags.to_pylist() == [["concept:weapons"]]
     st = REGISTRY["concepts"]
-    assert (st.kind, st.phase, st.alive_only, st.sections) == ("shard", "model", True, ("embed",))
+    assert (st.kind, st.phase, st.alive_only, st.sections) == ("shard", "model", True, ("embed", "input"))
 
 
 def test_entries_merge_by_name_over_the_built_in_list():

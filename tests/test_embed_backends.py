@@ -225,3 +225,170 @@ def test_decode_threads_give_the_inline_result_in_order(corpus):
     for (i, px, err), (j, px2, err2) in zip(inline, threaded):
         assert i == j and err == err2 and np.array_equal(px, px2)
     assert inline[-1][2][-1] is not None  # the missing file is an error for its item, not a crash
+
+
+# ------------------------------------------------------------------ other users of the model: one inference path
+
+# float16 keeps 10 fraction bits (IEEE 754 binary16): a stored entry below 1 in magnitude is within half
+# an ulp, 2**-12, of its float32 value.
+FP16_HALF_ULP = 2.0 ** -12
+# An item's embedding with other batch-mates (tests/test_backends.py BATCH_TOL, common practice).
+BATCH = {"fp32": 1e-5, "int8": 1e-4}
+ORT = pytest.mark.skipif(not backends.installed("onnxruntime"), reason="onnxruntime extra not installed")
+
+
+def _config(corpus: Path, cache: str, backend: str, precision: str, *more: str):
+    return pipeline_config(*BASE, f'input.path="{corpus}"', f'embed.backend="{backend}"',
+                           f'embed.precision="{precision}"', f'embed.cache_dir="{cache}"', *more)
+
+
+def _stage_embeddings(corpus: Path, cfg, captions: list[str] | None = None) -> tuple[dict, dict]:
+    """The embed stage's stored image and caption embeddings of the corpus photos, by file name."""
+    import hashlib
+
+    import numpy as np
+    import pyarrow as pa
+
+    from conftest import stage_call
+
+    files = sorted(corpus.glob("*.jpg"))
+    if captions is None:
+        caps = [f.with_suffix(".txt").read_text(encoding="utf-8") for f in files]
+    else:  # each given caption beside one of the photos, in turn
+        caps, files = captions, [files[i % len(files)] for i in range(len(captions))]
+    table = pa.table({"sample_id": [f"s{i:03d}" for i in range(len(caps))], "locator": [str(f) for f in files],
+                      "decoded": [True] * len(caps), "sha256": [hashlib.sha256(f.read_bytes()).hexdigest() for f in files],
+                      "caption": caps})
+    out = stage_call("embed", table, cfg=cfg)
+    img = {f.name: np.asarray(v, np.float32) for f, v in zip(files, out.column("image_emb").to_pylist())}
+    txt = {c: np.asarray(v, np.float32) for c, v in zip(caps, out.column("text_emb").to_pylist())}
+    return img, txt
+
+
+def _set_embeddings(corpus: Path, cfg, cache_dir: str | None = None):
+    """curate.imagesets.set_embeddings of the corpus folder through the eval-set check's own config view."""
+    from curate import imagesets
+
+    return imagesets.set_embeddings(imagesets.list_set(corpus), REGISTRY["decontaminate"].view(cfg),
+                                    cache_dir=cache_dir)
+
+
+def _by_name(se) -> dict:
+    return {Path(r).name: se.emb[i] for i, r in enumerate(se.images.refs) if se.ok[i]}
+
+
+@ORT
+@pytest.mark.parametrize("precision", ["fp32", "int8"])
+def test_eval_set_embeddings_are_the_embed_stages_on_the_runs_path(corpus, cache, precision):
+    """The eval-set check and leakcheck embed outside images exactly as the embed stage embeds the run's:
+    same model, inference path (int8: the same scales, fitted on the run's input) and decode."""
+    import numpy as np
+
+    cfg = _config(corpus, cache, "onnxruntime", precision)
+    stage, _ = _stage_embeddings(corpus, cfg)
+    se = _set_embeddings(corpus, cfg)
+    assert se.path["image"] == f"onnxruntime-{precision}"
+    if precision == "int8":  # the run's calibration batch, as the manifest records it
+        assert se.path["calibration_sha256"] == embed.identity(REGISTRY["embed"].view(cfg))["calibration_sha256"]
+    got = _by_name(se)
+    assert set(got) == set(stage) and len(got) == len(PHOTOS)
+    bound = BATCH[precision] + FP16_HALF_ULP  # the stage stores float16
+    assert max(float(np.abs(got[n] - stage[n]).max()) for n in stage) <= bound
+    if precision == "int8":
+        # the torch fp32 reference is measurably elsewhere, so the check above tells the paths apart
+        ref = _by_name(_set_embeddings(corpus, _config(corpus, cache, "torch", "fp32")))
+        assert max(float(np.abs(ref[n] - stage[n]).max()) for n in stage) > 5 * bound
+
+
+@ORT
+def test_the_eval_set_check_fingerprints_the_image_path(corpus, cache):
+    st = REGISTRY["decontaminate"]
+    check = [f'split.eval_sets=["{corpus}"]', "split.eval_semantic_cosine=0.9"]
+    ident = st.identity(st.view(_config(corpus, cache, "onnxruntime", "fp32", *check)))
+    assert ident["image_path"] == "onnxruntime-fp32" and set(ident["eval_sets"]) == {str(corpus)}
+    assert "image_path" not in st.identity(st.view(_config(corpus, cache, "torch", "fp32", *check)))
+
+
+@ORT
+def test_eval_set_embedding_cache_is_kept_per_inference_path(corpus, cache, tmp_path):
+    store = str(tmp_path / "sets")
+    n = len(PHOTOS)
+    first = _set_embeddings(corpus, _config(corpus, cache, "torch", "fp32"), store)
+    assert first.computed == n and first.path["image"] == "torch-fp32"
+    assert _set_embeddings(corpus, _config(corpus, cache, "torch", "fp32"), store).computed == 0
+    # another backend is another path: recomputed, not read from the torch entries
+    ort = _set_embeddings(corpus, _config(corpus, cache, "onnxruntime", "fp32"), store)
+    assert ort.computed == n and ort.path["image"] == "onnxruntime-fp32"
+    assert _set_embeddings(corpus, _config(corpus, cache, "onnxruntime", "fp32"), store).computed == 0
+    # int8 scales fitted on another calibration batch (fewer samples) are other numbers: recomputed
+    a = _set_embeddings(corpus, _config(corpus, cache, "onnxruntime", "int8"), store)
+    b = _set_embeddings(corpus, _config(corpus, cache, "onnxruntime", "int8", "embed.calibration_samples=8"), store)
+    assert a.path["calibration_sha256"] != b.path["calibration_sha256"]
+    assert a.computed == n and b.computed == n
+    assert _set_embeddings(corpus, _config(corpus, cache, "onnxruntime", "int8"), store).computed == 0
+
+
+@ORT
+def test_concept_prompts_go_through_the_captions_text_tower(corpus, cache):
+    """Concept prompts are encoded on the run's text path, so their cosines compare like the captions'."""
+    import numpy as np
+
+    from curate.stages import StageContext, concepts
+
+    cfg = _config(corpus, cache, "onnxruntime", "int8")
+    texts = tuple(dict.fromkeys(t for p in concepts.probes(cfg.concepts) for t in (*p.prompts, *p.counter_prompts)))
+    lm = concepts._model(StageContext(config=REGISTRY["concepts"].view(cfg)))
+    assert embed.inference_path(lm)["text"] == "onnxruntime-int8"
+    prompts = dict(zip(texts, concepts.prompt_embeddings(lm, texts, cfg.embed.batch_size)))
+    _, captions = _stage_embeddings(corpus, cfg, list(texts))  # the same texts, as captions of the run
+    bound = BATCH["int8"] + FP16_HALF_ULP
+    assert max(float(np.abs(prompts[t] - captions[t]).max()) for t in texts) <= bound
+    # on torch fp32 they would be measurably elsewhere
+    ref = embed.load(REGISTRY["embed"].view(_config(corpus, cache, "torch", "fp32"))).encode_texts(list(texts), 64)
+    assert max(float(np.abs(r - captions[t]).max()) for t, r in zip(texts, ref)) > 5 * bound
+    # the text path is in the stage's fingerprint; the reference path adds nothing
+    st = REGISTRY["concepts"]
+    ident = st.identity(st.view(cfg))
+    assert (ident["text_path"], ident["calibration_sha256"]) == ("onnxruntime-int8",
+                                                                  embed.inference_path(lm)["calibration_sha256"])
+    assert "text_path" not in st.identity(st.view(_config(corpus, cache, "torch", "fp32")))
+
+
+def _leak_config(tmp_path: Path, cache: str, backend: str, precision: str, input_path: Path | None) -> Path:
+    lines = ["[embed]", 'model = "demo"', 'pretrained = ""', f'backend = "{backend}"', f'precision = "{precision}"',
+             f'cache_dir = "{cache}"']
+    if input_path is not None:
+        lines += ["[input]", f'path = "{input_path}"']
+    p = tmp_path / f"{backend}-{precision}-{input_path is not None}.toml"
+    p.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    return p
+
+
+@ORT
+def test_leakcheck_embeds_on_the_configs_path(corpus, cache, tmp_path):
+    from curate.leakcheck import leakcheck
+
+    b = photo_corpus(tmp_path / "b", ("coffee", "chelsea"))
+    # a path that needs no calibration is used as named
+    res = leakcheck(corpus, b, semantic=0.99, config=_leak_config(tmp_path, cache, "onnxruntime", "fp32", None))
+    assert res["semantic_path"] == {"image": "onnxruntime-fp32", "text": "onnxruntime-fp32"} and not res["notes"]
+    # the same photos in both sets match themselves on the semantic signal too
+    assert {(p["a"], p["b"]) for p in res["pairs"]} >= {("coffee.jpg", "coffee.jpg"), ("chelsea.jpg", "chelsea.jpg")}
+    # int8 calibrates on the config's input, as the run does: the run's scales
+    cfg_file = _leak_config(tmp_path, cache, "onnxruntime", "int8", corpus)
+    res = leakcheck(corpus, b, semantic=0.99, config=cfg_file)
+    run_view = REGISTRY["embed"].view(_config(corpus, cache, "onnxruntime", "int8"))
+    assert res["semantic_path"]["image"] == "onnxruntime-int8"
+    assert res["semantic_path"]["calibration_sha256"] == embed.identity(run_view)["calibration_sha256"]
+    # without an input to calibrate on: int8 is refused, auto uses the reference and says so
+    with pytest.raises(ConfigError, match="embed.precision"):
+        leakcheck(corpus, b, semantic=0.99, config=_leak_config(tmp_path, cache, "onnxruntime", "int8", None))
+    res = leakcheck(corpus, b, semantic=0.99, config=_leak_config(tmp_path, cache, "auto", "auto", None))
+    assert res["semantic_path"] == {"image": "torch-fp32", "text": "torch-fp32"}
+    assert any("torch fp32" in n for n in res["notes"])
+
+
+def test_stages_that_encode_declare_what_the_model_loader_reads():
+    """concepts and the eval-set check load the run's model (embed.load reads [embed] and [input])."""
+    for name in ("embed", "concepts", "decontaminate"):
+        assert set(embed.LOAD_SECTIONS) <= set(REGISTRY[name].view(pipeline_config()).sections()), name

@@ -395,6 +395,28 @@ def test_a_probe_from_another_model_or_a_damaged_one_is_refused(trained, tmp_pat
     refused(tmp_path / "bad.safetensors", "do not match the sha256")
 
 
+def test_a_probe_applies_on_every_inference_path_of_its_weights(tmp_path):
+    # The model check compares weights and embedding size, not the inference path (curate.stages.probes'
+    # docstring): a probe trained on a torch fp32 run applies where [embed] names another backend.
+    from curate.stages import REGISTRY
+
+    from conftest import pipeline_config
+
+    path, _ = probes.save_probe(_demo_probe(), tmp_path / "t.safetensors")
+    st = REGISTRY["probes"]
+    for backend, precision in (("torch", "fp32"), ("onnxruntime", "fp32"), ("openvino", "fp32"),
+                               ("onnxruntime", "int8"), ("auto", "auto")):
+        cfg = pipeline_config(*DEMO, f'embed.backend="{backend}"', f'embed.precision="{precision}"',
+                              f'probes.apply.t={{path="{path}"}}')
+        assert st.identity(st.view(cfg))["probes"]["t"]["weights_sha256"] == probes.load_probe(path).meta["weights_sha256"]
+    # the check itself is on: other weights are refused on the same paths
+    other, _ = probes.save_probe(_demo_probe(model=dict(probes.load_probe(path).model, weights_sha256="0" * 64)),
+                                 tmp_path / "o.safetensors")
+    cfg = pipeline_config(*DEMO, 'embed.backend="onnxruntime"', f'probes.apply.t={{path="{other}"}}')
+    with pytest.raises(ConfigError, match="not comparable"):
+        st.identity(st.view(cfg))
+
+
 def test_probe_train_refuses_bad_labels_with_one_line(trained, tmp_path, capsys):
     _, out, labels, _ = trained
     bad = tmp_path / "bad.csv"

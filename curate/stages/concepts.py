@@ -16,6 +16,10 @@ image scores high only when a concept prompt matches it about as well as a descr
 would, and better than the counter-prompts. Flags are screening aids for human review, not
 verdicts on the content.
 
+Prompts are encoded by the run's own model on the run's inference path (curate.stages.embed.load):
+the same text tower, backend and precision as the captions, so a prompt's cosine with an image means
+what a caption's does.
+
 Scores go to the ledger column `concepts`, a struct with one float32 field per concept (pandas:
 a dict per row; DuckDB: `concepts.watermark`); null for samples without an image embedding.
 """
@@ -208,20 +212,25 @@ def _unit(a: np.ndarray) -> np.ndarray:
 
 
 def _model(ctx: StageContext) -> Any:
-    from ..models import clip as clipmod
+    """The run's CLIP model on the run's inference path (curate.stages.embed.load): prompts go through
+    the same text tower as the captions, so their cosines with the images compare like agreement's."""
+    from . import embed
 
-    e = ctx.config.section("embed")
-    return clipmod.load_model(e.model, e.pretrained, device=e.device, cache_dir=e.cache_dir or None,
-                              quantize=e.quantize)
+    return embed.load(ctx.config)
 
 
-# (weights digest, model name, device, prompts) -> prompt embeddings: each shard of a run reuses them.
+# (weights digest, model name, device, text-tower path, prompts) -> prompt embeddings: each shard of a
+# run reuses them.
 _PROMPT_CACHE: dict[tuple, np.ndarray] = {}
 
 
 def prompt_embeddings(lm: Any, texts: tuple[str, ...], batch_size: int) -> np.ndarray:
-    """L2-normalised embeddings of `texts`, encoded once per model and prompt list in this process."""
-    key = (lm.weights_sha256, lm.ref.model, lm.device, texts)
+    """L2-normalised embeddings of `texts`, encoded once per model, text path and prompt list in this process."""
+    from .embed import inference_path
+
+    path = inference_path(lm)
+    tower = (path["text"], path.get("calibration_sha256") if path["text"].endswith("-int8") else None)
+    key = (lm.weights_sha256, lm.ref.model, lm.device, tower, texts)
     if key not in _PROMPT_CACHE:
         _PROMPT_CACHE.clear()
         _PROMPT_CACHE[key] = lm.encode_texts(list(texts), batch_size)
@@ -269,7 +278,7 @@ CHECKS = (
 
 
 @stage(name=NAME, version=VERSION, config=ConceptsConfig, kind="shard", phase="model", alive_only=True,
-       needs=("image_emb",), sections=("embed",), provides=columns, checks=CHECKS, parallel="inline",
+       needs=("image_emb",), sections=("embed", "input"), provides=columns, checks=CHECKS, parallel="inline",
        active_if=lambda view: active(view),
        identity=lambda view: identity(view))
 def run(table: pa.Table, cfg: ConceptsConfig, ctx: StageContext) -> pa.Table:
@@ -325,8 +334,11 @@ def active(view: ConfigView) -> bool:
 
 
 def identity(view: ConfigView) -> dict:
-    """The concepts, the softmax scale and the match level with its source (fails early when unknown)."""
+    """The concepts, the softmax scale, the match level with its source (fails early when unknown) and,
+    off the reference path, the text tower's path the prompts are encoded on."""
+    from .embed import tower_identity
+
     cfg = view.section(NAME)
     match, source = match_level(cfg, view)
     return {"concepts": [p.name for p in probes(cfg)], "temperature": cfg.temperature or "model logit scale",
-            "match_cosine": match, "match_cosine_source": source}
+            "match_cosine": match, "match_cosine_source": source, **tower_identity(view, "text")}

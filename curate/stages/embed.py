@@ -16,7 +16,7 @@ import logging
 import math
 import os
 import sys
-from dataclasses import dataclass, field, replace
+from dataclasses import asdict, dataclass, field, replace
 from typing import Any, Literal
 
 import numpy as np
@@ -144,6 +144,12 @@ def columns(view: ConfigView) -> tuple[Column, ...]:
             Column("text_emb", vec, "CLIP caption embedding (L2-normalised)", ledger=False))
 
 
+def draft_size(lm: Any, cfg: EmbedConfig) -> int:
+    """The JPEG draft request for `lm` (0 = decode in full): the one rule of every image this model embeds,
+    in the stage, its calibration batch and outside sets (curate.imagesets.set_embeddings)."""
+    return DRAFT_MARGIN * max(lm.image_size) if cfg.jpeg_draft else 0
+
+
 def decode_for_model(data: bytes | BaseException, steps: list, draft_px: int) -> np.ndarray:
     """Image bytes -> uint8 HxWx3 pixels after open_clip's eval resize and crop."""
     import warnings
@@ -265,8 +271,7 @@ def run(table: pa.Table, cfg: EmbedConfig, ctx: StageContext) -> pa.Table:
     threads_before = torch.get_num_threads()
     torch.set_num_threads(cfg.threads or available_cores())
     try:
-        draft_px = DRAFT_MARGIN * max(lm.image_size) if cfg.jpeg_draft else 0
-        dataset = ImageChunks(d.image_locs, lm.pil_steps(), lm.image_size, draft_px,
+        dataset = ImageChunks(d.image_locs, lm.pil_steps(), lm.image_size, draft_size(lm, cfg),
                               max_bytes=ctx.config.section("input").max_file_bytes)
         workers = decode_worker_count(cfg, lm.device) if len(d.image_locs) > cfg.batch_size else 0
         # A process that has run ONNX Runtime or OpenVINO (their own thread pools) is not forked: a forked
@@ -379,29 +384,61 @@ def identity(view: ConfigView) -> dict:
     if ref.weights_path:
         check_checkpoint(ref.weights_path)
     if not cfg.reference:
-        choice = load(view).choice
-        out["paths"] = {"image": choice["image"], "text": choice["text"]}
-        if any(choice[k].endswith("-int8") for k in ("image", "text")):
-            out["calibration_sha256"] = choice["calibration"]["sha256"]  # int8 scales come from it
+        lm = load(view)
+        choice = lm.choice
+        path = inference_path(lm)
+        out["paths"] = {"image": path["image"], "text": path["text"]}
+        if "calibration_sha256" in path:
+            out["calibration_sha256"] = path["calibration_sha256"]  # int8 scales come from it
         # Speeds and errors: recorded in the manifest, left out of the fingerprint (curate.plan).
         out["measured"] = {**backends.summary(choice), **({"fallback": choice["fallback"]} if "fallback" in choice
                                                            else {})}
     return out
 
 
+def inference_path(lm: Any) -> dict:
+    """The path each tower of a loaded model runs on ("onnxruntime-fp32", ...) and, when either is int8, the
+    digest of the calibration batch its scales were fitted on: with the weights, what decides the numbers."""
+    out = {k: (lm.towers[k].name if lm.towers else "torch-fp32") for k in ("image", "text")}
+    if any(v.endswith("-int8") for v in out.values()):
+        out["calibration_sha256"] = lm.choice["calibration"]["sha256"]
+    return out
+
+
+def tower_identity(view: ConfigView, kind: str) -> dict:
+    """For the fingerprint of a stage that encodes with the run's model (`load`): the path of its tower `kind`
+    ("image" or "text"), with the calibration digest when int8. Empty on the reference path (torch fp32),
+    which leaves those fingerprints as they were."""
+    if view.section(NAME).reference:
+        return {}
+    path = inference_path(load(view))
+    out = {f"{kind}_path": path[kind]}
+    if path[kind].endswith("-int8"):
+        out["calibration_sha256"] = path["calibration_sha256"]
+    return out
+
+
 # The model `load` resolved last, by the embed and input config it was resolved for: identity()
-# resolves it at plan time and the run in the same process reuses it (same paths, no re-measuring).
+# resolves it at plan time, and the run in the same process (embed, and the stages that encode with
+# the same model: concepts, the eval-set check) reuses it (same paths, no re-measuring).
 _LOADED: dict[str, Any] = {}
+# The sections `load` reads: every stage that calls it declares both.
+LOAD_SECTIONS = (NAME, "input")
 
 
 def load(view: ConfigView) -> Any:
     """The model on the configured inference path (clip.LoadedModel); `auto` and int8 calibrate on the
-    run's own first images (`calibration`). A path that cannot run here raises ModelError."""
+    run's own first images (`calibration`). A path that cannot run here raises ModelError.
+
+    The one way the run loads its CLIP model: the embed stage, the concept prompts and the eval-set
+    embeddings (curate.imagesets.set_embeddings) all encode on the path it returns. `view` needs the
+    [embed] and [input] sections; the result depends on nothing else, so every stage's view of the same
+    config gets the same model."""
     from ..errors import ModelError
     from ..models import clip as clipmod
 
     cfg = view.section(NAME)
-    key = json.dumps(view.to_dict(), sort_keys=True, default=str)
+    key = json.dumps({s: asdict(view.section(s)) for s in LOAD_SECTIONS}, sort_keys=True, default=str)
     if key in _LOADED:
         return _LOADED[key]
     kw = {"device": cfg.device, "cache_dir": cfg.cache_dir or None, "quantize": cfg.quantize}
@@ -434,7 +471,7 @@ def calibration(view: ConfigView, lm: Any) -> Any:
     from ..sources import iter_samples, read_bytes
 
     cfg, inp = view.section(NAME), view.section("input")
-    draft_px = DRAFT_MARGIN * max(lm.image_size) if cfg.jpeg_draft else 0
+    draft_px = draft_size(lm, cfg)
     steps, want = lm.pil_steps(), cfg.calibration_samples
     images: list[np.ndarray] = []
     captions: list[str] = []

@@ -10,7 +10,12 @@ probes trained with --text), applied with NumPy. A sample scoring at or above th
 threshold fails the check `probe:<name>` (value: the probability). Scores go to the ledger column
 `probes`, a struct with one float32 field per probe (DuckDB: `probes.teapot`). The plan refuses,
 before any work, a probe file that is missing or damaged, and one trained on another CLIP model
-(its weights sha256 differs from this run's). Relative paths are relative to the config file.
+(its weights sha256 differs from this run's). The inference path ([embed] backend and precision) is
+not part of that check: a probe trained on one path applies on any path of the same weights. fp32 on
+ONNX Runtime or OpenVINO gives torch fp32's embeddings to float rounding, `auto` picks only paths within
+its tolerance of torch fp32, and a path named outright (int8, bf16) is the user's choice, recorded in
+the manifest; a changed path re-runs this stage (its input embeddings' fingerprint holds the path).
+Relative paths are relative to the config file.
 Flags are screening aids for human review: a probe knows only what its labels showed it.
 """
 from __future__ import annotations
@@ -104,7 +109,8 @@ def columns(view: ConfigView) -> tuple[Column, ...]:
 
 
 def check_model(name: str, probe: probelib.Probe, run_model: dict, dim: int) -> str | None:
-    """Why a probe cannot score this run's embeddings (another embedding size or CLIP model), or None."""
+    """Why a probe cannot score this run's embeddings (another embedding size or CLIP model), or None.
+    Same weights on another inference path is not a reason (see the module docstring)."""
     trained = probe.model
     if int(probe.meta["dim"]) != dim:
         return (f"probe {name} was trained on {probe.meta['dim']}-dimensional embeddings of {trained.get('model')}, "

@@ -318,7 +318,7 @@ def _semantic_matches(images: Any, emb: np.ndarray, has_emb: np.ndarray, cfg: Sp
     """Adds cosine matches to `best` as negative distances (so a perceptual match, >= 0, wins ties)."""
     from .. import imagesets
 
-    se = imagesets.set_embeddings(images, ctx.config.embed, cache_dir=cache)
+    se = imagesets.set_embeddings(images, ctx.config, cache_dir=cache)  # the run's model and inference path
     rows = np.nonzero(has_emb)[0]
     orows = np.nonzero(se.ok)[0]
     if not rows.size or not orows.size:
@@ -347,7 +347,8 @@ def _has_eval_sets(view: Any) -> bool:
 
 
 @stage(name="decontaminate", section=NAME, version=VERSION, config=SplitConfig, kind="global", phase="group",
-       alive_only=True, needs=("hash_codes",), wants=("image_emb",), sections=("neardup", "hashes", "inspect", "embed"),
+       alive_only=True, needs=("hash_codes",), wants=("image_emb",),
+       sections=("neardup", "hashes", "inspect", "embed", "input"),
        provides=(Column("eval_match", pa.string(), "the outside evaluation image this sample near-duplicates"),),
        checks=CHECKS, active_if=_has_eval_sets, parallel="inline", identity=lambda view: _identity(view))
 def run_decontaminate(table: pa.Table, cfg: SplitConfig, ctx: StageContext) -> pa.Table:
@@ -398,7 +399,8 @@ def run(table: pa.Table, cfg: SplitConfig, ctx: StageContext) -> pa.Table:
 
 
 def _identity(config: Any) -> dict:
-    """The outside sets' listing (paths, sizes, mtimes) so a changed benchmark re-runs this stage."""
+    """The outside sets' listing (paths, sizes, mtimes) so a changed benchmark re-runs this stage, and with
+    semantic matching off the reference path, the image tower's path their embeddings are made on."""
     cfg = config.section(NAME)
     paths = resolve_eval_sets(cfg, config)
     if not paths:
@@ -415,4 +417,9 @@ def _identity(config: Any) -> dict:
             raise ConfigError(f"eval set {p}: {e}", file=getattr(config, "origin", None),
                               key="split.eval_sets") from e
         out[p] = fingerprint(s.refs, s.stamps)
-    return {"eval_sets": out}
+    ident = {"eval_sets": out}
+    if cfg.eval_semantic_cosine > 0 and getattr(config.section("embed"), "enabled", True):
+        from .embed import tower_identity
+
+        ident.update(tower_identity(config, "image"))
+    return ident
