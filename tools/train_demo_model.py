@@ -85,8 +85,9 @@ def render_photo(seed: int, stamp: bool = False) -> tuple[dict, np.ndarray]:
         spec["watermark"] = True
     buf = io.BytesIO()
     img.save(buf, "JPEG", quality=rng.randint(84, 92))
-    draft = embed.DRAFT_MARGIN * PREPROCESS_CFG["size"]
-    return spec, embed.decode_for_model(buf.getvalue(), _STEPS, draft)
+    size = PREPROCESS_CFG["size"]
+    return spec, embed.decode_for_model(buf.getvalue(), _STEPS, (size, size), embed.DRAFT_MARGIN,
+                                        PREPROCESS_CFG["resize_mode"])
 
 
 def render_one(seed: int) -> tuple[dict, np.ndarray]:

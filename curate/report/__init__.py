@@ -561,11 +561,12 @@ def _facts_section(cfg: Any, facts: dict) -> list[str]:
     models = [(name, ident) for name, ident in stages.items() if isinstance(ident, dict) and "model" in ident]
     if models:
         out.append('<h3>Models</h3><table id="models"><tr><th>stage</th><th>model</th><th>pretrained</th>'
-                   "<th>weights file</th><th>weights sha256</th></tr>")
+                   "<th>weights file</th><th>weights sha256</th><th>inference path</th></tr>")
         for name, ident in models:
             out.append(f"<tr><td>{text(name)}</td><td>{text(ident.get('model'))}</td>"
                        f"<td>{text(ident.get('pretrained'))}</td><td>{text(ident.get('weights_file'))}</td>"
-                       f'<td class="digest">{text(ident.get("weights_sha256") or "not recorded")}</td></tr>')
+                       f'<td class="digest">{text(ident.get("weights_sha256") or "not recorded")}</td>'
+                       f'<td class="why">{text(_inference_path(ident))}</td></tr>')
         out.append("</table>")
     names = list(stages) + [s for s in state if s not in stages]
     if names:
@@ -583,6 +584,28 @@ def _facts_section(cfg: Any, facts: dict) -> list[str]:
         out.append("</table>")
         out.append('<p class="note">Stages that run in one pass over a shard share that pass\'s time equally.</p>')
     return out
+
+
+def _inference_path(ident: dict) -> str:
+    """Which backend and precision ran each CLIP tower, and, when they were measured against torch
+    fp32 (auto or int8), the speed and the largest change of an image-caption cosine."""
+    paths = ident.get("paths")
+    if not isinstance(paths, dict):
+        if not ident.get("model"):
+            return ""
+        return "torch fp32, image tower dynamic int8 (quantize)" if ident.get("quantize") else "torch fp32 (reference)"
+    said = f"image {paths.get('image', '?')}, text {paths.get('text', '?')}"
+    m = ident.get("measured")
+    if isinstance(m, dict):
+        if m.get("fallback"):
+            said += f"; auto fell back: {m['fallback']}"
+        elif m.get("speedup") is not None:
+            said += f"; measured {float(m['speedup']):.2f}x torch fp32"
+            if m.get("max_agreement_diff") is not None:
+                said += f", cosines moved by at most {float(m['max_agreement_diff']):.4f}"
+            if m.get("tolerance") is not None:
+                said += f" (tolerance {float(m['tolerance']):g})"
+    return said
 
 
 def _config_section(cfg: Any) -> list[str]:

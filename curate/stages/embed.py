@@ -10,7 +10,6 @@ curate.models.clip.LoadedModel.encode_texts). Embeddings are L2-normalised float
 from __future__ import annotations
 
 import functools
-import io
 import json
 import logging
 import math
@@ -23,11 +22,11 @@ import numpy as np
 import pyarrow as pa
 
 from ..checks import CHECKS_TYPE, check
-from ..models import backends
+from ..models import backends, preprocess
 from .base import CheckSpec, Column, ConfigView, StageContext, checks_column, stage
 
 NAME = "embed"
-VERSION = "2"
+VERSION = "3"  # 3: JPEG draft keyed on the resize side (curate.models.preprocess)
 log = logging.getLogger(__name__)
 
 
@@ -50,10 +49,11 @@ class EmbedConfig:
     # Decode/preprocess worker processes; 0 = auto (1 per 4 cores on CPU, all cores but one with CUDA).
     # Shards with at most one batch of distinct images are decoded in the main process.
     decode_workers: int = 0
-    # Decode JPEGs at a reduced DCT scale (Pillow draft: 1/2, 1/4 or 1/8) that keeps both sides
-    # >= 2x the model input, so the bicubic resize after it still averages over >= 2 source pixels.
-    # Measured on the demo corpus: agreement moves by at most 0.0064 vs full decoding (0.028 when
-    # drafting down to 1x the input size).
+    # Decode JPEGs at a reduced DCT scale (Pillow draft: 1/2 or 1/4) that keeps the side the resize
+    # keys on >= 1.5x the model input, so the bicubic resize after it still averages over >= 1.5
+    # source pixels (curate/models/preprocess.py). Measured by bench/throughput.py on public photos
+    # cut to 1024x768: ViT-B-32 decodes at 1/2 scale, decode + resize 2.2x faster, image-caption
+    # cosines moved by <= 0.0008 vs full decoding (0.028 when drafting down to 1x the input size).
     jpeg_draft: bool = True
     # Dynamic int8 quantisation of the image tower's Linear layers (torch.ao), CPU only. Faster;
     # agreement moves by less than 0.01 on the demo corpus. Results depend on batch-mates; precision =
@@ -110,8 +110,8 @@ CHECKS = (
 
 # Images per work item of a decode worker (common practice: a few per item keeps pipes busy).
 CHUNK = 8
-# JPEG draft decoding keeps both sides >= this many times the model input (see jpeg_draft).
-DRAFT_MARGIN = 2
+# JPEG draft decoding keeps the side the resize keys on >= this many times the model input (jpeg_draft).
+DRAFT_MARGIN = preprocess.DRAFT_MARGIN
 
 
 def output_schema(dim: int) -> pa.Schema:
@@ -144,44 +144,50 @@ def columns(view: ConfigView) -> tuple[Column, ...]:
             Column("text_emb", vec, "CLIP caption embedding (L2-normalised)", ledger=False))
 
 
-def draft_size(lm: Any, cfg: EmbedConfig) -> int:
-    """The JPEG draft request for `lm` (0 = decode in full): the one rule of every image this model embeds,
-    in the stage, its calibration batch and outside sets (curate.imagesets.set_embeddings)."""
-    return DRAFT_MARGIN * max(lm.image_size) if cfg.jpeg_draft else 0
+@dataclass(frozen=True)
+class ModelDecoder:
+    """Image bytes -> uint8 HxWx3 pixels after open_clip's eval resize and crop, JPEGs decoded at the
+    draft scale of curate.models.preprocess. The one rule of every image a model embeds: the stage,
+    its calibration batch and outside sets (curate.imagesets.set_embeddings)."""
+
+    steps: tuple
+    size_hw: tuple[int, int]
+    resize_mode: str = "shortest"
+    margin: float = DRAFT_MARGIN  # 0 = decode in full
+
+    def __call__(self, data: bytes | BaseException) -> np.ndarray:
+        from .inspect import to_rgb
+
+        return preprocess.decode_for_model(data, list(self.steps), self.size_hw, to_rgb, self.resize_mode,
+                                           self.margin)
+
+    def key(self) -> dict:
+        """What the decoded pixels depend on besides the bytes (for cache keys)."""
+        return {"draft_margin": self.margin, "max_reduction": preprocess.MAX_DRAFT_REDUCTION,
+                "resize_mode": self.resize_mode}
 
 
-def decode_for_model(data: bytes | BaseException, steps: list, draft_px: int) -> np.ndarray:
-    """Image bytes -> uint8 HxWx3 pixels after open_clip's eval resize and crop."""
-    import warnings
+def decode_for_model(data: bytes | BaseException, steps: list, size_hw: tuple[int, int], margin: float = 0.0,
+                     resize_mode: str = "shortest") -> np.ndarray:
+    """One image through a ModelDecoder (margin 0 = full decode)."""
+    return ModelDecoder(tuple(steps), tuple(size_hw), resize_mode, margin)(data)
 
-    from PIL import Image, ImageOps
 
-    from .inspect import to_rgb
-
-    if isinstance(data, BaseException):
-        raise data
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")  # odd EXIF/ICC blocks: inspect already judged this image
-        img = Image.open(io.BytesIO(data))
-        if draft_px and img.format == "JPEG":
-            # Draft picks the smallest DCT scale (1/2, 1/4, 1/8) keeping both sides >= draft_px.
-            img.draft(img.mode, (draft_px, draft_px))
-        img = to_rgb(ImageOps.exif_transpose(img))
-    for step in steps:
-        img = step(img)
-    return np.asarray(img, dtype=np.uint8)
+def model_decoder(lm: Any, cfg: EmbedConfig) -> ModelDecoder:
+    """The decoder for `lm` under `cfg` (jpeg_draft on: preprocess's draft margin; off: full decode)."""
+    return ModelDecoder(tuple(lm.pil_steps()), tuple(lm.image_size),
+                        lm.preprocess_cfg.get("resize_mode", "shortest") or "shortest",
+                        DRAFT_MARGIN if cfg.jpeg_draft else 0.0)
 
 
 class ImageChunks:
     """Work items for decode workers: item i = (i, pixels [n, H, W, 3] uint8, errors [n])."""
 
-    def __init__(self, locators: list[str], steps: list, size_hw: tuple[int, int], draft_px: int,
-                 chunk: int = CHUNK, max_bytes: int | None = None):
+    def __init__(self, locators: list[str], decoder: ModelDecoder, chunk: int = CHUNK, max_bytes: int | None = None):
         self.locators = locators
         self.max_bytes = max_bytes
-        self.steps = steps
-        self.size_hw = size_hw
-        self.draft_px = draft_px
+        self.decoder = decoder
+        self.size_hw = decoder.size_hw
         self.chunk = chunk
 
     def __len__(self) -> int:
@@ -195,10 +201,7 @@ class ImageChunks:
         errors: list[str | None] = [None] * len(locs)
         for j, data in enumerate(read_bytes(locs, max_bytes=self.max_bytes)):
             try:
-                arr = decode_for_model(data, self.steps, self.draft_px)
-                if arr.shape != pixels.shape[1:]:
-                    raise ValueError(f"preprocessed to {arr.shape}, expected {pixels.shape[1:]}")
-                pixels[j] = arr
+                pixels[j] = self.decoder(data)  # raises on a wrong shape
             except Exception as e:  # noqa: BLE001 - one bad image is this sample's reason
                 errors[j] = f"{type(e).__name__}: {e}"[:160]
         return i, pixels, errors
@@ -271,8 +274,7 @@ def run(table: pa.Table, cfg: EmbedConfig, ctx: StageContext) -> pa.Table:
     threads_before = torch.get_num_threads()
     torch.set_num_threads(cfg.threads or available_cores())
     try:
-        dataset = ImageChunks(d.image_locs, lm.pil_steps(), lm.image_size, draft_size(lm, cfg),
-                              max_bytes=ctx.config.section("input").max_file_bytes)
+        dataset = ImageChunks(d.image_locs, model_decoder(lm, cfg), max_bytes=ctx.config.section("input").max_file_bytes)
         workers = decode_worker_count(cfg, lm.device) if len(d.image_locs) > cfg.batch_size else 0
         # A process that has run ONNX Runtime or OpenVINO (their own thread pools) is not forked: a forked
         # decode worker crashed the process once in three tries after an auto pick. Threads decode there.
@@ -471,8 +473,7 @@ def calibration(view: ConfigView, lm: Any) -> Any:
     from ..sources import iter_samples, read_bytes
 
     cfg, inp = view.section(NAME), view.section("input")
-    draft_px = draft_size(lm, cfg)
-    steps, want = lm.pil_steps(), cfg.calibration_samples
+    decode, want = model_decoder(lm, cfg), cfg.calibration_samples
     images: list[np.ndarray] = []
     captions: list[str] = []
     for batch in iter_samples(inp, batch_rows=max(want, 64)):
@@ -481,10 +482,10 @@ def calibration(view: ConfigView, lm: Any) -> Any:
         for r, data in zip(rows, read_bytes([r["locator"] for r in rows], max_bytes=inp.max_file_bytes)):
             text = r["caption_raw"].decode("utf-8", "replace").strip()
             try:
-                px = decode_for_model(data, steps, draft_px)
+                px = decode(data)
             except Exception:  # noqa: BLE001 - an image that does not decode is simply not used
                 continue
-            if text and px.shape == (*lm.image_size, 3):
+            if text:
                 images.append(px)
                 captions.append(text)
             if len(images) >= want:
