@@ -522,3 +522,32 @@ def test_cache_root_follows_cache_dir_and_xdg(tmp_path, monkeypatch):
     monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path / "xdg"))
     assert export.cache_root(None) == tmp_path / "xdg" / export.CACHE_FOLDER
     assert os.fspath(export.cache_root(None)).endswith("curate-exports")
+
+
+@pytest.mark.skipif(not backends.installed("openvino"), reason="openvino not installed")
+def test_openvino_towers_leave_a_usable_signal_stack(tmp_path):
+    """OpenVINO's CPU plugin swaps the thread's alternate signal stack while it lives. Towers built,
+    then dropped in creation order, once left the main thread on a freed stack, and the next child
+    process to end under a SIGCHLD handler (torch's DataLoader installs one) killed the process with
+    SIGSEGV (exit -11). Reproduced in a fresh process, as a run with several towers would be."""
+    import subprocess
+    import sys
+
+    code = (
+        "import gc, signal, subprocess, sys\n"
+        "signal.signal(signal.SIGCHLD, lambda *a: None)\n"
+        "from curate.models import backends, clip\n"
+        "lm = clip.load_model('demo', device='cpu')\n"
+        "backends._openvino_caps()\n"
+        "a = backends.build_tower(lm, 'image', 'openvino', 'fp32', cache_dir=sys.argv[1], threads=1)\n"
+        "b = backends.build_tower(lm, 'text', 'openvino', 'fp32', cache_dir=sys.argv[1], threads=1)\n"
+        "del a; gc.collect(); del b; gc.collect()\n"
+        "for _ in range(5):\n"
+        "    subprocess.run([sys.executable, '-c', 'pass'], check=True)\n"
+        "print('survived')\n"
+    )
+    root = Path(__file__).resolve().parents[1]
+    env = {**os.environ, "PYTHONPATH": str(root)}
+    out = subprocess.run([sys.executable, "-c", code, str(tmp_path)], cwd=root, env=env, capture_output=True,
+                         text=True, timeout=300)
+    assert out.returncode == 0 and "survived" in out.stdout, (out.returncode, out.stderr[-2000:])

@@ -11,6 +11,7 @@ onnxruntime and openvino are optional extras, imported only when a path needs th
 """
 from __future__ import annotations
 
+import functools
 import hashlib
 import json
 import logging
@@ -89,9 +90,22 @@ def installed(backend: str) -> bool:
     return backend == "torch" or not missing(backend)
 
 
-def _openvino_caps() -> set[str]:
+@functools.lru_cache(maxsize=1)
+def _openvino_core() -> Any:
+    """The process's one OpenVINO Core, kept for the life of the process.
+
+    OpenVINO's CPU plugin installs its own alternate signal stack on the thread that creates it and
+    puts the previous one back when it is destroyed. With two Cores whose plugins are destroyed out
+    of order, the thread was left with an alternate stack that had been freed, and the next signal
+    with a handler (a child process ending, under a SIGCHLD handler such as torch's DataLoader
+    installs) killed the process with SIGSEGV (seen with openvino 2026 on Linux: si_code SI_KERNEL
+    while waiting for a child). One Core, created once and never destroyed, cannot do that."""
     ov = export.require("openvino", "openvino")
-    return set(ov.Core().get_property("CPU", "OPTIMIZATION_CAPABILITIES"))
+    return ov.Core()
+
+
+def _openvino_caps() -> set[str]:
+    return set(_openvino_core().get_property("CPU", "OPTIMIZATION_CAPABILITIES"))
 
 
 def cpu_precisions(backend: str) -> dict[str, str]:
@@ -352,8 +366,7 @@ class OrtTower(Tower):
 
 class OvTower(Tower):
     def __init__(self, model_path: Path, kind: str, precision: str, threads: int, meta: dict):
-        ov = export.require("openvino", "openvino")
-        core = ov.Core()
+        core = _openvino_core()
         cfg = {
             "INFERENCE_NUM_THREADS": max(1, threads),
             # Explicit: on CPUs with bf16 the plugin would otherwise pick bf16 for "fp32" graphs.
