@@ -54,18 +54,26 @@ class ImageSet:
     problems: list[str | None]  # a reason the entry cannot be read at all, else None
     # For shards/output: (part file, row) per entry; for the others, unused.
     rows: list[tuple[str, int]] = field(default_factory=list)
+    # Largest image read, in bytes (the run's input.max_file_bytes); None: that setting's default.
+    max_bytes: int | None = None
 
     def __len__(self) -> int:
         return len(self.names)
 
     def read(self, idx: Sequence[int]) -> Iterator[bytes | Exception]:
         """Image bytes of the given entries, in the given order (ascending is fastest)."""
+        from .config import InputConfig
+
+        cap = InputConfig.max_file_bytes if self.max_bytes is None else self.max_bytes
         if self.kind in ("shards", "output"):
-            yield from _read_shard_rows([self.rows[i] for i in idx])
+            for data in _read_shard_rows([self.rows[i] for i in idx]):
+                if isinstance(data, bytes) and len(data) > cap:
+                    data = OSError(f"{len(data)} bytes, over the {cap}-byte limit (input.max_file_bytes); not read")
+                yield data
             return
         from .sources import read_bytes
 
-        yield from read_bytes([self.refs[i] for i in idx])
+        yield from read_bytes([self.refs[i] for i in idx], max_bytes=cap)
 
 
 # --------------------------------------------------------------------------- listing
@@ -109,9 +117,16 @@ def detect_kind(path: str) -> str:
     return "folder"  # an empty folder is an empty set
 
 
-def list_set(path: str | Path) -> ImageSet:
+def list_set(path: str | Path, max_bytes: int | None = None) -> ImageSet:
     """List a set of images (a local path or a URL). Raises InputError when the path is missing or
-    of no known kind."""
+    of no known kind. `max_bytes`: the largest image read later (default: input.max_file_bytes's
+    default)."""
+    images = _list_set(path)
+    images.max_bytes = max_bytes
+    return images
+
+
+def _list_set(path: str | Path) -> ImageSet:
     from .sources.stores import local_path
 
     local = local_path(str(path))

@@ -63,7 +63,8 @@ def leakcheck(a: str | Path, b: str | Path, *, radius: int | None = None, semant
         raise ConfigError(f"radius must be 0..64 bits, got {r}", key="radius")
     cache = str(cache_dir) if cache_dir else None
     timings: dict[str, float] = {}
-    sets, codes = _hash_sets(a, b, settings, cache, workers, timings)
+    max_bytes = cfg.input.max_file_bytes if cfg is not None else None
+    sets, codes = _hash_sets(a, b, settings, cache, workers, timings, max_bytes)
     t = time.perf_counter()
     check_r = getattr(getattr(cfg, "neardup", None), "check_radius", similarity.CHECK_RADIUS)
     pairs = cross_set_pairs(codes[0], codes[1], r, int(check_r))
@@ -106,12 +107,12 @@ def leakcheck(a: str | Path, b: str | Path, *, radius: int | None = None, semant
 
 
 def _hash_sets(a: str | Path, b: str | Path, settings: Any, cache: str | None, workers: int,
-               timings: dict[str, float]) -> tuple[list[imagesets.ImageSet], list[imagesets.SetCodes]]:
+               timings: dict[str, float], max_bytes: int | None) -> tuple[list[imagesets.ImageSet], list[imagesets.SetCodes]]:
     """List and hash both sets (codes cached in `cache`), timing each step into `timings`."""
     sets, codes = [], []
     for which, path in (("a", a), ("b", b)):
         t = time.perf_counter()
-        s = imagesets.list_set(path)
+        s = imagesets.list_set(path, max_bytes)
         if len(s) == 0:
             raise InputError(f"set {which.upper()} ({path}) holds no images; nothing to compare")
         timings[f"list_{which}"] = time.perf_counter() - t

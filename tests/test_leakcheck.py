@@ -340,6 +340,19 @@ def test_undecodable_images_are_listed_not_fatal(sets, tmp_path):
     assert PLANTED <= {(p["a"], p["b"]) for p in res["pairs"]}
 
 
+def test_the_configured_file_size_cap_holds_for_both_sets(sets, tmp_path):
+    # input.max_file_bytes caps every image read, outside sets included (common practice: a size cap
+    # before decoding keeps a huge or hostile file from being read whole).
+    sizes = {p.name: p.stat().st_size for p in (sets / "b").iterdir()}
+    cap = sorted(sizes.values())[-1] - 1  # the largest file of B is over it
+    conf = tmp_path / "c.toml"
+    conf.write_text(f"[input]\nmax_file_bytes = {cap}\n", encoding="utf-8")
+    res = leakcheck(sets / "a", sets / "b", config=conf)
+    over = {n for n, v in sizes.items() if v > cap}
+    assert {u["name"] for u in res["b_unreadable"]} == over
+    assert {u["reason"] for u in res["b_unreadable"]} == {"unreadable"}
+
+
 @pytest.mark.slow
 def test_demo_corpus_split_does_not_leak(sample_corpus, tmp_path):
     # The acceptance check on the Kilnworks demo: its own train and eval shards share no

@@ -273,7 +273,7 @@ def _decontaminate(table: pa.Table, codes: Any, cfg: SplitConfig,
     semantic = cfg.eval_semantic_cosine > 0 and "image_emb" in table.column_names
     emb, has_emb = _embeddings(table) if semantic else (None, None)
     for path in paths:
-        images = imagesets.list_set(path)
+        images = imagesets.list_set(path, ctx.config.section("input").max_file_bytes)
         sc = imagesets.set_codes(images, settings, cache_dir=cache, workers=max(1, ctx.workers))
         bad = int((~sc.ok).sum())
         if bad:
