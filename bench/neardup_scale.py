@@ -95,9 +95,9 @@ def check_groups(codes: np.ndarray, checks: np.ndarray | None, cr: int, ident: i
     is_leader = g.leader == np.arange(rank.shape[0])
     for q in queries.tolist():
         d = np.concatenate([
-            hamming.min_distances(np.broadcast_to(codes[q], codes[s : s + 1 << 20].shape), codes[s : s + 1 << 20], ident,
-                                  None if checks is None else np.broadcast_to(checks[q], checks[s : s + 1 << 20].shape),
-                                  None if checks is None else checks[s : s + 1 << 20], cr)
+            hamming.min_distances(np.broadcast_to(codes[q], codes[s : s + (1 << 20)].shape), codes[s : s + (1 << 20)], ident,
+                                  None if checks is None else np.broadcast_to(checks[q], checks[s : s + (1 << 20)].shape),
+                                  None if checks is None else checks[s : s + (1 << 20)], cr)
             for s in range(0, codes.shape[0], 1 << 20)])
         near = np.flatnonzero(d <= radius)
         near = near[near != q]
