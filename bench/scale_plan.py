@@ -14,6 +14,7 @@ over every check. It prints seconds and peak RSS per step, and extrapolates to 1
 from __future__ import annotations
 
 import argparse
+import hashlib
 import json
 import resource
 import subprocess
@@ -74,7 +75,27 @@ def synth(n: int, seed: int = 0) -> pa.Table:
     })
 
 
-def one(n: int) -> dict:
+# Stage output columns the digest covers, in this order (the verdict's fields follow).
+OUTPUTS = ("caption_images", "caption_repeats.checks", "clip_score", "agreement.checks", "group_id", "group_size",
+           "dup_of", "dup_signal", "dup_distance", "dup_transform", "keep_reason", "neardup.checks", "split",
+           "split.checks")
+
+
+def digest(table: pa.Table, v) -> str:
+    """sha256 of every output value and the verdict, read as Python values in row blocks (so equal
+    results give equal digests whatever the Arrow types, chunks or buffer layouts)."""
+    h = hashlib.sha256()
+    cols = [(name, table.column(name)) for name in OUTPUTS]
+    cols += [(name, pa.array(getattr(v, name))) for name in ("kept", "quarantined")]
+    cols += [(name, getattr(v, name)) for name in ("reasons", "flags", "redacted", "stopped_at", "records")]
+    for name, col in cols:
+        h.update(name.encode())
+        for lo in range(0, len(col), 65536):
+            h.update(json.dumps(col.slice(lo, 65536).to_pylist(), sort_keys=True).encode())
+    return h.hexdigest()
+
+
+def one(n: int, with_digest: bool = False) -> dict:
     """Run the corpus-wide steps on n synthetic samples in this process."""
     sys.path.insert(0, str(ROOT))
     from curate import decide
@@ -105,25 +126,30 @@ def one(n: int) -> dict:
     t = time.perf_counter()
     stage_checks = [(s, table.column(f"{s}.checks").to_pylist()) for s in ("caption_repeats", "agreement",
                                                                            "neardup", "split")]
-    decide.verdict(stage_checks, {}, {}, actions, n)
+    v = decide.verdict(stage_checks, {}, {}, actions, n)
     steps["verdict"] = {"seconds": round(time.perf_counter() - t, 2), "peak_rss_mb": round(_rss_mb())}
     kept = int(decide.alive(checks, actions, n).sum())
     total = round(sum(s["seconds"] for k, s in steps.items() if k != "synthesise"), 2)
-    return {"rows": n, "steps": steps, "seconds": total, "peak_rss_mb": round(_rss_mb()), "kept": kept}
+    out = {"rows": n, "steps": steps, "seconds": total, "peak_rss_mb": round(_rss_mb()), "kept": kept}
+    if with_digest:
+        out["digest"] = digest(table, v)
+    return out
 
 
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--rows", type=int, action="append", help="rows to run (repeatable); default 100k and 1M")
     ap.add_argument("--json", action="store_true", help="print one JSON line")
+    ap.add_argument("--digest", action="store_true", help="add a sha256 of every output and the verdict per run")
     ap.add_argument("--child", type=int, help=argparse.SUPPRESS)
     a = ap.parse_args()
     if a.child:
-        print(json.dumps(one(a.child)))
+        print(json.dumps(one(a.child, a.digest)))
         return 0
     results = []
     for n in a.rows or [100_000, 1_000_000]:
-        r = subprocess.run([sys.executable, __file__, "--child", str(n)], capture_output=True, text=True)
+        r = subprocess.run([sys.executable, __file__, "--child", str(n)] + (["--digest"] if a.digest else []),
+                           capture_output=True, text=True)
         if r.returncode != 0:
             print(r.stderr[-2000:], file=sys.stderr)
             return r.returncode
