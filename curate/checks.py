@@ -86,34 +86,54 @@ def format_condition(rec: dict) -> str:
 def columnar(n: int, present: Any, records: list[dict]) -> pa.ListArray:
     """A check column built without one Python dict per row: every row where `present` is true gets
     the same records, in order; the others get none. Each record is a dict of check() fields whose
-    values are scalars or arrays of length n (value/threshold floats, failed bools, detail strings)."""
+    values are scalars or arrays of length n (value/threshold floats, failed bools, detail strings,
+    numpy or Arrow); as in check(), non-finite numbers become null and long details are cut."""
     import numpy as np
 
     present = np.asarray(present, dtype=bool)
     rows = np.flatnonzero(present)
-    k = len(records)
+    m, k = len(rows), len(records)
     fields = []
     for name, typ in ((f.name, f.type) for f in CHECK_TYPE):
-        parts = []
-        for rec in records:
-            v = rec.get(name)
-            if isinstance(v, (np.ndarray, list, pa.Array)):
-                arr = np.asarray(v, dtype=object if pa.types.is_string(typ) else None)[rows]
-                if pa.types.is_floating(typ):
-                    arr = arr.astype(np.float64)
-                    part = pa.array(arr, typ, mask=~np.isfinite(arr))
-                else:
-                    part = pa.array(arr, typ)
-            else:
-                if pa.types.is_floating(typ) and v is not None and not math.isfinite(float(v)):
-                    v = None
-                part = pa.array([v] * len(rows), typ)
-            parts.append(part)
-        # interleave: row r's records are consecutive
+        parts = [_field(rec.get(name), typ, rows) for rec in records]
         stacked = pa.concat_arrays(parts) if parts else pa.array([], typ)
-        order = (np.arange(k)[None, :] * len(rows) + np.arange(len(rows))[:, None]).reshape(-1)
-        fields.append(stacked.take(pa.array(order, pa.int64())) if len(order) else stacked)
+        if name == "detail":
+            stacked = _cut_details(stacked)
+        if k > 1:  # interleave: row r's records are consecutive
+            order = (np.arange(k)[None, :] * m + np.arange(m)[:, None]).reshape(-1)
+            stacked = stacked.take(pa.array(order, pa.int64()))
+        fields.append(stacked)
     values = pa.StructArray.from_arrays(fields, fields=list(CHECK_TYPE))
     counts = present.astype(np.int64) * k
     offsets = np.concatenate([[0], np.cumsum(counts)]).astype(np.int32)
     return pa.ListArray.from_arrays(pa.array(offsets, pa.int32()), values)
+
+
+def _field(v: Any, typ: pa.DataType, rows: Any) -> pa.Array:
+    """One field of one record at the given rows: from an array of n values, or a scalar repeated."""
+    import numpy as np
+
+    if isinstance(v, pa.ChunkedArray):
+        v = v.combine_chunks()
+    if isinstance(v, pa.Array) and not pa.types.is_floating(typ):
+        return v.take(pa.array(rows, pa.int64())).cast(typ)
+    if isinstance(v, (np.ndarray, list, pa.Array)):
+        arr = np.asarray(v, dtype=object if pa.types.is_string(typ) else None)[rows]
+        if pa.types.is_floating(typ):
+            arr = arr.astype(np.float64)
+            return pa.array(arr, typ, mask=~np.isfinite(arr))
+        return pa.array(arr, typ)
+    if pa.types.is_floating(typ) and v is not None and not math.isfinite(float(v)):
+        v = None
+    return pa.nulls(len(rows), typ) if v is None else pa.repeat(pa.scalar(v, typ), len(rows))
+
+
+def _cut_details(details: pa.Array) -> pa.Array:
+    """Details longer than DETAIL_MAX characters cut as check() cuts them."""
+    import pyarrow.compute as pc
+
+    long = pc.fill_null(pc.greater(pc.utf8_length(details), DETAIL_MAX), False)
+    if not pc.any(long).as_py():
+        return details
+    cut = pc.binary_join_element_wise(pc.utf8_slice_codeunits(details, 0, DETAIL_MAX - 1), "…", "")
+    return pc.if_else(long, cut, details)

@@ -200,40 +200,53 @@ def verdict(stage_checks: Sequence[tuple[str, pa.ChunkedArray | pa.Array]], skip
         parents = np.asarray(pc.list_parent_indices(col).to_numpy(zero_copy_only=False), dtype=np.int64)
         rec = _stage_records(stage, flat, parents, actions, reviewed_keep)
         parts.append((parents, rec))
-        act = np.asarray(rec.field("action").to_numpy(zero_copy_only=False), dtype=object)
-        failed = np.asarray(rec.field("failed").to_numpy(zero_copy_only=False), dtype=bool)
-        drop = np.flatnonzero(failed & (act == "drop"))
-        codes = rec.field("code").to_numpy(zero_copy_only=False)
+        drop = np.flatnonzero(_failed(rec) & _equal(rec.field("action"), "drop"))
         rows, pos = np.unique(parents[drop], return_index=True)
-        fresh = [k for k, r in enumerate(rows) if first_reason[r] is None]
-        for k in fresh:
-            first_reason[rows[k]] = actions.reason(codes[drop[pos[k]]])
+        fresh = np.equal(first_reason[rows], None)
+        codes = rec.field("code").take(pa.array(drop[pos[fresh]])).dictionary_encode()
+        first_reason[rows[fresh]] = np.array([actions.reason(c) for c in codes.dictionary.to_pylist()] + [None],
+                                             dtype=object)[_ids(codes)]
     if parts:
         parents = np.concatenate([p for p, _ in parts])
-        recs = pa.concat_arrays([r for _, r in parts])
         order = np.argsort(parents, kind="stable")  # stage order within each row
-        parents, recs = parents[order], recs.take(pa.array(order))
+        parents = parents[order]
+        recs = pa.chunked_array([r for _, r in parts], LEDGER_CHECK).take(pa.array(order)).combine_chunks()
     else:
         parents, recs = np.zeros(0, np.int64), pa.array([], LEDGER_CHECK)
     return _outcome(parents, recs, n, actions)
 
 
+def _failed(rec: pa.StructArray) -> np.ndarray:
+    return np.asarray(pc.fill_null(rec.field("failed"), False).to_numpy(zero_copy_only=False), dtype=bool)
+
+
+def _equal(values: pa.Array, what: str) -> np.ndarray:
+    """Boolean mask: values equal to `what` (null: False)."""
+    return np.asarray(pc.fill_null(pc.equal(values, what), False).to_numpy(zero_copy_only=False), dtype=bool)
+
+
+def _ids(enc: pa.DictionaryArray) -> np.ndarray:
+    """The indices of a dictionary-encoded column as int64; a null row gets len(dictionary)."""
+    return np.asarray(enc.indices.fill_null(len(enc.dictionary)).to_numpy(zero_copy_only=False), dtype=np.int64)
+
+
 def _stage_records(stage: str, flat: pa.StructArray, parents: np.ndarray, actions: Actions,
                    reviewed_keep: np.ndarray) -> pa.StructArray:
     codes = flat.field("code")
-    uniq = pc.unique(codes).to_pylist()
-    act_of = pa.array([actions.action(c) for c in uniq], pa.string())
-    act = np.asarray(act_of.take(pc.index_in(codes, value_set=pa.array(uniq, pa.string()))).to_numpy(
-        zero_copy_only=False), dtype=object)
-    failed = np.asarray(pc.fill_null(flat.field("failed"), False).to_numpy(zero_copy_only=False), dtype=bool)
-    can = pa.array([c for c in uniq if actions.overridable(c)], pa.string())
-    overridable = np.asarray(pc.is_in(codes, value_set=can).to_numpy(zero_copy_only=False), dtype=bool)
-    over = failed & (act == "drop") & overridable & reviewed_keep[parents]
-    act = np.where(over, "overridden", act)  # a reviewer kept the sample despite this check
+    enc = codes.dictionary_encode()
+    uniq = enc.dictionary.to_pylist()
+    # Actions by number: each code's action, then "overridden" (a reviewer kept the sample despite the check).
+    names = list(dict.fromkeys([actions.action(c) for c in uniq] + ["drop", "overridden"]))
+    act = np.array([names.index(actions.action(c)) for c in uniq], np.int64)[_ids(enc)]
+    failed = _failed(flat)
+    can = np.array([actions.overridable(c) for c in uniq], bool)[_ids(enc)]
+    over = failed & (act == names.index("drop")) & can & reviewed_keep[parents]
+    act[over] = names.index("overridden")
     m = len(flat)
     return pa.StructArray.from_arrays(
-        [pa.array(np.full(m, stage, dtype=object), pa.string()), codes,
-         pa.array(np.where(failed, "fail", "pass").astype(object), pa.string()), pa.array(act, pa.string()),
+        [pa.repeat(pa.scalar(stage, pa.string()), m), codes,
+         pa.array(["pass", "fail"], pa.string()).take(pa.array(failed.view(np.int8))),
+         pa.array(names, pa.string()).take(pa.array(act)),
          flat.field("detail"), flat.field("value"), flat.field("threshold"), flat.field("op"), flat.field("unit"),
          pa.array(failed)], fields=list(LEDGER_CHECK))
 
@@ -254,37 +267,36 @@ def _skipped_records(stage: str, rows: np.ndarray, codes: list[str],
 
 
 def _outcome(parents: np.ndarray, recs: pa.StructArray, n: int, actions: Actions) -> Verdict:
-    act = np.asarray(recs.field("action").to_numpy(zero_copy_only=False), dtype=object)
+    act = recs.field("action")
     failed = np.asarray(recs.field("failed").to_numpy(zero_copy_only=False), dtype=bool)
-    codes = np.asarray(recs.field("code").to_numpy(zero_copy_only=False), dtype=object)
-    stages = np.asarray(recs.field("stage").to_numpy(zero_copy_only=False), dtype=object)
-    if len(codes):
-        uniq, code_id = np.unique(codes.astype(str), return_inverse=True)
-    else:
-        uniq, code_id = np.zeros(0, dtype=str), np.zeros(0, np.int64)
-    reason_of = np.array([actions.reason(c) for c in uniq], dtype=object)
+    codes = recs.field("code")
+    enc = codes.dictionary_encode()
+    code_id = _ids(enc)
+    reason_of = pa.array([actions.reason(c) for c in enc.dictionary.to_pylist()], pa.string())
 
     def pick(mask: np.ndarray) -> np.ndarray:
         idx = np.flatnonzero(mask)
         return idx[_first_per_row(parents[idx], code_id[idx])]
 
-    drop = pick(failed & (act == "drop"))
-    reasons = _lists(parents[drop], pa.array(reason_of[code_id[drop]], pa.string()), n)
-    mark = pick(failed & (np.isin(act, list(MARKING)) | (codes == OVERRIDE)))
-    flags = _lists(parents[mark], pa.array(codes[mark], pa.string()), n)
-    red = pick(failed & (act == "redact"))
-    redacted = _lists(parents[red], pa.array(codes[red], pa.string()), n)
+    marking = np.asarray(pc.fill_null(pc.is_in(act, value_set=pa.array(MARKING)), False).to_numpy(
+        zero_copy_only=False), dtype=bool)
+    drop = pick(failed & _equal(act, "drop"))
+    reasons = _lists(parents[drop], reason_of.take(pa.array(code_id[drop])), n)
+    mark = pick(failed & (marking | _equal(codes, OVERRIDE)))
+    flags = _lists(parents[mark], codes.take(pa.array(mark)), n)
+    red = pick(failed & _equal(act, "redact"))
+    redacted = _lists(parents[red], codes.take(pa.array(red)), n)
     kept = np.ones(n, bool)
     kept[parents[drop]] = False
     quarantined = np.zeros(n, bool)
-    quarantined[parents[failed & (act == "quarantine")]] = True
+    quarantined[parents[failed & _equal(act, "quarantine")]] = True
     quarantined &= kept
-    stopped = np.full(n, None, dtype=object)
+    first = np.full(n, -1, np.int64)
     if len(drop):
         rows, pos = np.unique(parents[drop], return_index=True)
-        stopped[rows] = stages[drop[pos]]
-    return Verdict(kept, quarantined, reasons, flags, redacted, pa.array(stopped, pa.string()),
-                   _lists(parents, recs, n))
+        first[rows] = drop[pos]
+    stopped = recs.field("stage").take(pa.array(first, mask=first < 0))
+    return Verdict(kept, quarantined, reasons, flags, redacted, stopped, _lists(parents, recs, n))
 
 
 LEDGER_CHECK = pa.struct(

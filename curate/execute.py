@@ -23,6 +23,7 @@ from . import layout, plugins, workdir
 from .checks import CHECKS_TYPE
 from .errors import CurateError, StageError
 from .stages import REGISTRY, StageContext
+from .stages.base import empty_checks
 
 # Rows per chunk in a pass that decodes images (bounded memory: a few full-size images at a time).
 CHUNK_ROWS = 16
@@ -292,8 +293,7 @@ def _conform(res: pa.Table | None, sub: pa.Table, st: Any, view: Any, shard: str
                                  shard=shard) from e
         arrays.append(col)
         names.append(c.name)
-    chk = res.column(st.checks_column) if st.checks_column in res.column_names else pa.array(
-        [[] for _ in range(res.num_rows)], CHECKS_TYPE)
+    chk = res.column(st.checks_column) if st.checks_column in res.column_names else empty_checks(res.num_rows)
     if chk.type != CHECKS_TYPE:
         try:
             chk = chk.cast(CHECKS_TYPE)

@@ -376,14 +376,27 @@ def _tokens(main: np.ndarray, check: np.ndarray | None) -> tuple[np.ndarray, np.
     return m[first], c[first], inv
 
 
+def _common(values: np.ndarray, group: np.ndarray, n_groups: int) -> np.ndarray:
+    """Per group (0..n_groups-1), the value all its members share, or -1 where they differ."""
+    lo = np.full(n_groups, np.iinfo(np.int64).max, np.int64)
+    hi = np.full(n_groups, -1, np.int64)
+    np.minimum.at(lo, group, values)
+    np.maximum.at(hi, group, values)
+    return np.where(lo == hi, lo, -1)
+
+
 def _token_pairs(pa: np.ndarray, ca: np.ndarray, pb: np.ndarray | None, cb: np.ndarray | None, radius: int,
-                 check_radius: int, substrings: int | None, threads: int) -> tuple[np.ndarray, np.ndarray]:
+                 check_radius: int, substrings: int | None, threads: int,
+                 holder: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Token pairs (a, b) whose main codes are within ``radius`` and check codes within
-    ``check_radius`` (pb None: pairs a < b of one token set)."""
+    ``check_radius`` (pb None: pairs a < b of one token set, leaving out pairs of two tokens with
+    the same non-negative ``holder``)."""
     ua, inv_a = np.unique(pa, return_inverse=True)
-    mem_a = _members(inv_a.ravel(), ua.shape[0])
+    inv_a = inv_a.ravel()
+    mem_a = _members(inv_a, ua.shape[0])
     if pb is None:
-        ui, uj, _ = mih.unique_join(ua, None, radius, substrings, threads)
+        tags = None if holder is None else _common(holder, inv_a, ua.shape[0])
+        ui, uj, _ = mih.unique_join(ua, None, radius, substrings, threads, tags)
         x, y, _ = _expand_members(ui, uj, np.zeros(ui.shape[0], np.int16), mem_a, mem_a)
         x0, y0 = _same_code_pairs(mem_a)
         x, y, cb = np.concatenate([x, x0]), np.concatenate([y, y0]), ca
@@ -393,6 +406,8 @@ def _token_pairs(pa: np.ndarray, ca: np.ndarray, pb: np.ndarray | None, cb: np.n
         x, y, _ = _expand_members(ui, uj, np.zeros(ui.shape[0], np.int16), mem_a,
                                   _members(inv_b.ravel(), ub.shape[0]))
     ok = hamming(ca[x], cb[y]) <= check_radius
+    if holder is not None:
+        ok &= (holder[x] != holder[y]) | (holder[x] < 0)
     return x[ok].astype(np.int64), y[ok].astype(np.int64)
 
 
@@ -424,7 +439,9 @@ def code_graph(codes2d: Any, radius: int, identity: int | None = None, checks: A
     has_t = np.zeros(t, bool)
     has_t[inv[~is_id]] = True
     own_s, own_u = _unique_pairs(owner[is_id], inv[is_id], t)
-    x, y = _token_pairs(tp, tc, None, None, r, check_radius, substrings, threads)
+    # Tokens of one picture's crops are close to each other (about K*(K-1)/2 pairs per sample); a
+    # pair of tokens that only one sample holds links that sample to itself, so it is not listed.
+    x, y = _token_pairs(tp, tc, None, None, r, check_radius, substrings, threads, _common(owner, inv, t))
     e = has_id[x] & has_id[y]
     eu, ev = np.minimum(x[e], y[e]), np.maximum(x[e], y[e])
     rt, ru = _reaches(x, y, has_id, has_t)

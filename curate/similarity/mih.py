@@ -34,8 +34,17 @@ def popcount_distance(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     return np.bitwise_count(np.bitwise_xor(a, b)).astype(np.int16)
 
 
-def brute_join(a: np.ndarray, b: np.ndarray | None, radius: int) -> Join:
-    """Quadratic scan in blocks: every (i, j) within radius (b None: pairs i < j within a)."""
+def _apart(tags: np.ndarray | None, i: np.ndarray, j: np.ndarray) -> np.ndarray | slice:
+    """Which pairs (i, j) to report: those whose tags differ or are negative (every pair without tags)."""
+    if tags is None:
+        return slice(None)
+    ti = tags[i]
+    return (ti != tags[j]) | (ti < 0)
+
+
+def brute_join(a: np.ndarray, b: np.ndarray | None, radius: int, tags: np.ndarray | None = None) -> Join:
+    """Quadratic scan in blocks: every (i, j) within radius (b None: pairs i < j within a, leaving out
+    pairs of two codes with the same non-negative ``tags``)."""
     other = a if b is None else b
     out_i, out_j, out_d = [], [], []
     step = max(1, BLOCK_PAIRS // max(other.shape[0], 1))
@@ -44,6 +53,8 @@ def brute_join(a: np.ndarray, b: np.ndarray | None, radius: int) -> Join:
         ii, jj = np.nonzero(d <= radius)
         if b is None:
             keep = jj > ii + s
+            ii, jj = ii[keep], jj[keep]
+            keep = _apart(tags, ii + s, jj)
             ii, jj = ii[keep], jj[keep]
         out_i.append(ii + s)
         out_j.append(jj)
@@ -256,6 +267,8 @@ _NS_TAKE, _NS_SLOT, _NS_GENERAL = 8.0, 2.5, 45.0
 _FILL = np.uint64(0x5555555555555555)
 # Bucket pairs per dense step (bounds the P*P temporaries to about 64 MiB).
 _DENSE_SLOTS = 1 << 23
+# Hits of a dense step resolved at once (bounds the index arrays: about 60 bytes per hit).
+_DENSE_HITS = 1 << 20
 
 
 def _pad_width(counts_a: np.ndarray, counts_b: np.ndarray) -> int:
@@ -301,8 +314,9 @@ class _TableJoin:
     """
 
     def __init__(self, a: np.ndarray, b: np.ndarray | None, k: int, blocks: list[tuple[int, int]],
-                 radii: list[int], radius: int):
+                 radii: list[int], radius: int, tags: np.ndarray | None = None):
         self.self_join = b is None
+        self.tags = tags
         shift, width = blocks[k]
         self.width, self.rk, self.radius = width, radii[k], radius
         n_b = a.shape[0] if self.self_join else b.shape[0]
@@ -372,9 +386,11 @@ class _TableJoin:
                 return
             ok = ok[_popcount((xor[ok] >> s) & mask) > r]
         if ok.shape[0]:
-            self.out_i.append(self.ta.order[x[ok]])
-            self.out_j.append(self.tb.order[y[ok]])
-            self.out_d.append(d[ok].astype(np.int16))
+            i, j, d = self.ta.order[x[ok]], self.tb.order[y[ok]], d[ok]
+            keep = _apart(self.tags, i, j)
+            self.out_i.append(i[keep])
+            self.out_j.append(j[keep])
+            self.out_d.append(d[keep].astype(np.int16))
 
     def dense(self, src: np.ndarray, dst: np.ndarray, triangle: bool) -> None:
         """Bucket pairs whose members fit in the P levels: all P x P member pairs at once."""
@@ -392,15 +408,15 @@ class _TableJoin:
             hit = self.buf_m[: pw * pw * n]
             np.less_equal(dist.reshape(-1), self.radius, out=hit)
             flat = np.flatnonzero(hit)
-            if not flat.shape[0]:
-                continue
-            la, rest = np.divmod(flat, pw * n)
-            lb, pi = np.divmod(rest, n)
-            ok = (la < ta.counts[s_[pi]]) & (lb < tb.counts[d_[pi]])
-            if triangle:
-                ok &= la < lb
-            pi, la, lb = pi[ok], la[ok], lb[ok]
-            self.keep(ta.starts[s_[pi]] + la, tb.starts[d_[pi]] + lb, xr[la, lb, pi].copy(), dist[la, lb, pi].copy())
+            # Buckets of near codes (one picture's crops) hit in most slots: resolve them in slices.
+            for h in range(0, flat.shape[0], _DENSE_HITS):
+                la, rest = np.divmod(flat[h : h + _DENSE_HITS], pw * n)
+                lb, pi = np.divmod(rest, n)
+                ok = (la < ta.counts[s_[pi]]) & (lb < tb.counts[d_[pi]])
+                if triangle:
+                    ok &= la < lb
+                pi, la, lb = pi[ok], la[ok], lb[ok]
+                self.keep(ta.starts[s_[pi]] + la, tb.starts[d_[pi]] + lb, xr[la, lb, pi], dist[la, lb, pi])
 
     def general(self, src: np.ndarray, dst: np.ndarray, triangle: bool) -> None:
         """Bucket pairs with a bucket too big for the levels: list the candidates and check them."""
@@ -410,8 +426,10 @@ class _TableJoin:
             self.keep(x, y)
 
 
-def _join(a: np.ndarray, b: np.ndarray | None, radius: int, m: int, threads: int = 1) -> Join:
-    """Exact pairs within radius between distinct codes a and b (b None: within a, i < j).
+def _join(a: np.ndarray, b: np.ndarray | None, radius: int, m: int, threads: int = 1,
+          tags: np.ndarray | None = None) -> Join:
+    """Exact pairs within radius between distinct codes a and b (b None: within a, i < j, leaving out
+    pairs with the same non-negative ``tags``).
 
     Returns indices into a and b (or a, a) and distances; each pair exactly once. The m substring
     tables are independent, so ``threads`` > 1 runs them side by side (numpy releases the GIL).
@@ -425,9 +443,9 @@ def _join(a: np.ndarray, b: np.ndarray | None, radius: int, m: int, threads: int
         from concurrent.futures import ThreadPoolExecutor
 
         with ThreadPoolExecutor(max_workers=threads) as ex:
-            parts = list(ex.map(lambda k: _TableJoin(a, b, k, blocks, radii, radius).run(), ks))
+            parts = list(ex.map(lambda k: _TableJoin(a, b, k, blocks, radii, radius, tags).run(), ks))
     else:
-        parts = [_TableJoin(a, b, k, blocks, radii, radius).run() for k in ks]
+        parts = [_TableJoin(a, b, k, blocks, radii, radius, tags).run() for k in ks]
     i = np.concatenate([p[0] for p in parts])
     j = np.concatenate([p[1] for p in parts])
     d = np.concatenate([p[2] for p in parts])
@@ -437,9 +455,15 @@ def _join(a: np.ndarray, b: np.ndarray | None, radius: int, m: int, threads: int
 
 
 def unique_join(a: np.ndarray, b: np.ndarray | None, radius: int, substrings: int | None = None,
-               threads: int = 1) -> Join:
+               threads: int = 1, tags: np.ndarray | None = None) -> Join:
     """Exact join of distinct codes: multi-index hashing with ``substrings`` tables, or a quadratic
-    scan when 0; None picks whichever the cost model says is cheaper."""
+    scan when 0; None picks whichever the cost model says is cheaper.
+
+    ``tags`` (a self-join only): an integer per code of a; a pair of two codes with the same
+    non-negative tag is left out (the caller knows it links nothing new), so it takes no memory.
+    """
+    if tags is not None and b is not None:
+        raise ValueError("tags apply to a self-join only")
     n_a = a.shape[0]
     n_b = n_a if b is None else b.shape[0]
     if n_a == 0 or n_b == 0:
@@ -448,5 +472,5 @@ def unique_join(a: np.ndarray, b: np.ndarray | None, radius: int, substrings: in
     if m < 0 or m > BITS:
         raise ValueError(f"substrings must be within 0..{BITS}, got {substrings}")
     if m == 0:
-        return brute_join(a, b, radius)
-    return _join(a, b, radius, m, threads)
+        return brute_join(a, b, radius, tags)
+    return _join(a, b, radius, m, threads, tags)

@@ -20,9 +20,9 @@ from typing import Any, Literal
 import numpy as np
 import pyarrow as pa
 
-from ..checks import CHECKS_TYPE, check, columnar
+from ..checks import check, columnar
 from ..errors import ConfigError
-from .base import CheckSpec, Column, ConfigView, StageContext, checks_column, stage
+from .base import CheckSpec, Column, ConfigView, StageContext, checks_column, empty_checks, stage
 
 log = logging.getLogger(__name__)
 
@@ -221,7 +221,7 @@ def run_pairs(table: pa.Table, cfg: AgreementConfig, ctx: StageContext) -> pa.Ta
         shuffled[idx] = shuffled_pairs(img[idx], txt[idx], seed)
     return pa.Table.from_arrays(
         [table.column("sample_id"), pa.array(np.where(valid, cos, 0.0).astype(np.float32), mask=~valid),
-         pa.array(shuffled, mask=np.isnan(shuffled)), pa.array([[] for _ in range(n)], type=CHECKS_TYPE)],
+         pa.array(shuffled, mask=np.isnan(shuffled)), empty_checks(n)],
         names=["sample_id", "agreement", "shuffled_agreement", checks_column("agreement_pairs")])
 
 

@@ -231,4 +231,6 @@ def spec_for(code: str, specs: dict[str, CheckSpec]) -> CheckSpec | None:
 
 
 def empty_checks(n: int) -> pa.Array:
-    return pa.array([[] for _ in range(n)], type=CHECKS_TYPE)
+    """A check column of n rows that hold no check (built without a Python list per row)."""
+    return pa.ListArray.from_arrays(pa.repeat(pa.scalar(0, pa.int32()), n + 1), pa.array([], CHECKS_TYPE.value_type),
+                                    type=CHECKS_TYPE)

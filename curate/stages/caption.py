@@ -16,7 +16,7 @@ from dataclasses import dataclass, field
 
 import pyarrow as pa
 
-from ..checks import CHECKS_TYPE, check
+from ..checks import CHECKS_TYPE, check, columnar
 from ..sources.base import CAPTION_PROBLEMS
 from .base import CheckSpec, Column, StageContext, checks_column, stage
 
@@ -226,32 +226,25 @@ def run(table: pa.Table, cfg: CaptionConfig, ctx: StageContext) -> pa.Table:
        provides=(Column("caption_images", pa.int32(), "distinct images that carry this caption"),))
 def run_repeats(table: pa.Table, cfg: CaptionConfig, ctx: StageContext) -> pa.Table:
     """A caption on >= max_repeats distinct images (by sha256, else by sample) fails for all of them."""
-    import pandas as pd
+    import numpy as np
+    import pyarrow.compute as pc
 
-    df = pd.DataFrame(
-        {
-            "key": table.column("caption_key").to_pandas(),
-            "img": table.column("sha256").to_pandas() if "sha256" in table.column_names else None,
-            "sid": table.column("sample_id").to_pandas(),
-        }
-    )
-    df["img"] = df["img"].fillna(df["sid"]) if df["img"].notna().any() else df["sid"]
-    counts = df.dropna(subset=["key"]).groupby("key")["img"].nunique()
-    n = df["key"].map(counts)
-    out_checks = []
-    out_n = []
-    for key, cnt in zip(df["key"], n):
-        if key is None or pd.isna(cnt):
-            out_checks.append([])
-            out_n.append(None)
-            continue
-        cnt = int(cnt)
-        out_n.append(cnt)
-        out_checks.append([check("caption_repeated", value=cnt, threshold=cfg.max_repeats, op="<", unit="images")])
+    key = table.column("caption_key")
+    img = table.column("sample_id")
+    if "sha256" in table.column_names and table.column("sha256").null_count < table.num_rows:
+        img = pc.coalesce(table.column("sha256"), img)
+    has_key = pc.is_valid(key)
+    per_key = pa.table({"key": key, "img": img}).filter(has_key).group_by("key").aggregate(
+        [("img", "count_distinct")])
+    images = per_key.column("img_count_distinct").take(pc.index_in(key, value_set=per_key.column("key")))
+    cnt = np.asarray(images.to_numpy(zero_copy_only=False), dtype=np.float64)  # NaN where no key
+    checks = columnar(table.num_rows, np.asarray(has_key.to_numpy(zero_copy_only=False), dtype=bool), [
+        {"code": "caption_repeated", "value": cnt, "threshold": cfg.max_repeats, "op": "<", "unit": "images",
+         "failed": ~(cnt < cfg.max_repeats)}])
     return pa.table(
         {
             "sample_id": table.column("sample_id"),
-            "caption_images": pa.array(out_n, pa.int32()),
-            checks_column("caption_repeats"): pa.array(out_checks, type=CHECKS_TYPE),
+            "caption_images": images.cast(pa.int32()),
+            checks_column("caption_repeats"): checks,
         }
     )

@@ -28,13 +28,14 @@ from __future__ import annotations
 import logging
 import os
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
 from .. import similarity
-from ..checks import CHECKS_TYPE, check
+from ..checks import CHECKS_TYPE, columnar
 from . import hashes as hashes_mod
 from .base import CheckSpec, Column, StageContext, checks_column, stage
 
@@ -109,16 +110,22 @@ def _fidelity(table: pa.Table, rows: np.ndarray) -> np.ndarray:
     """101 for a lossless file, the estimated JPEG quality (1-100) for a JPEG, 0 when unknown."""
     q = _col(table, "jpeg_quality", rows, 0.0)
     if "format" in table.column_names:
-        fmt = table.column("format").to_pylist()
-        q = np.where(np.array([fmt[i] in LOSSLESS for i in rows], dtype=bool), 101.0, q)
+        lossless = pc.is_in(table.column("format").take(pa.array(rows, pa.int64())), value_set=pa.array(LOSSLESS))
+        q = np.where(np.asarray(pc.fill_null(lossless, False).to_numpy(zero_copy_only=False), dtype=bool), 101.0, q)
     return q
+
+
+def _flagged(table: pa.Table, rows: np.ndarray) -> np.ndarray:
+    """1 for a row with a risk or quality flag before this stage, else 0."""
+    if "flags_before" not in table.column_names:
+        return np.zeros(len(rows))
+    count = pc.list_value_length(table.column("flags_before").take(pa.array(rows, pa.int64())))
+    return (np.asarray(pc.fill_null(count, 0).to_numpy(zero_copy_only=False)) > 0).astype(np.float64)
 
 
 # name -> (what it prefers, score of each row: lower wins)
 KEEPER_CRITERIA = {
-    "unflagged": ("no risk or quality flag", lambda t, r: np.asarray(
-        [bool(f) for f in t.column("flags_before").to_pylist()], np.float64)[r]
-        if "flags_before" in t.column_names else np.zeros(len(r))),
+    "unflagged": ("no risk or quality flag", _flagged),
     "pixels": ("more pixels", lambda t, r: -(_col(t, "width", r, 0.0) * _col(t, "height", r, 0.0))),
     "fidelity": ("a lossless file or a higher JPEG quality", lambda t, r: -_fidelity(t, r)),
     "sharpness": ("sharper", lambda t, r: -_col(t, "sharpness", r, -np.inf)),
@@ -134,12 +141,13 @@ def keeper_scores(table: pa.Table, rows: np.ndarray, order: list[str]) -> np.nda
         np.zeros((0, len(rows)))
 
 
-def why_kept(scores: np.ndarray, order: list[str], keeper: int, member: int) -> str:
-    """The first criterion on which the kept copy beats a member (sample_id when all tie)."""
-    for k, name in enumerate(order):
-        if scores[k, keeper] < scores[k, member]:
-            return name
-    return "sample_id"
+def why_kept(scores: np.ndarray, order: list[str], keeper: np.ndarray, member: np.ndarray) -> pa.Array:
+    """Per (keeper[k], member[k]): the first criterion on which the kept copy beats the member
+    (sample_id when all tie)."""
+    wins = scores[:, keeper] < scores[:, member]  # (criteria, pairs)
+    first = np.where(wins.any(axis=0), wins.argmax(axis=0), len(order)) if len(order) else \
+        np.zeros(len(keeper), np.int64)
+    return pa.array([*order, "sample_id"], pa.string()).take(pa.array(first, pa.int64()))
 
 
 COLUMNS = (
@@ -278,45 +286,101 @@ def run(table: pa.Table, cfg: NeardupConfig, ctx: StageContext) -> pa.Table:
 
 def _output(table: pa.Table, rows: np.ndarray, groups: similarity.Groups, scores: np.ndarray, cfg: NeardupConfig,
             kind: str, views: list[similarity.View] | None) -> pa.Table:
-    """The stage's columns for every input row (rows outside ``rows`` stay null)."""
-    n = table.num_rows
-    out: dict[str, list] = {c.name: [None] * n for c in COLUMNS}
-    checks: list[list[dict]] = [[] for _ in range(n)]
-    ids = table.column("sample_id").to_pylist()
+    """The stage's columns for every input row (rows outside ``rows`` stay null), built column-wise."""
+    n, m = table.num_rows, rows.shape[0]
+    leader = groups.leader
     sizes = groups.sizes()
-    names = ("sha256", kind, "embedding")
-    for k, i in enumerate(rows.tolist()):
-        kk = int(groups.leader[k])
-        gid = ids[rows[kk]]
-        out["group_id"][i], out["group_size"][i] = gid, int(sizes[k])
-        if kk == k:
-            detail = "no copy" if sizes[k] == 1 else f"kept over {sizes[k] - 1} copies"
-            checks[i] = [check("duplicate", failed=False, detail=detail)]
-            continue
-        sig = names[int(groups.signal[k])]
-        dist = float(groups.distance[k])
-        how = _how(groups, k, sig, views)
-        if sig == "embedding":
-            rec = check("duplicate", failed=True, value=1.0 - dist, threshold=cfg.cosine, op="<", unit="cosine",
-                        detail=f"copy of {gid} (embedding)")
-        elif sig == "sha256":
-            rec = check("duplicate", failed=True, detail=f"same bytes as {gid}")
-        else:
-            rec = check("duplicate", failed=True, value=dist, threshold=cfg.radius, op=">", unit="bits",
-                        detail=f"copy of {gid} ({sig}, {how})")
-        reason = why_kept(scores, cfg.keeper, kk, k)
-        rec["detail"] = f"{rec['detail']}; the kept copy wins on {reason}"
-        checks[i] = [rec]
-        out["dup_of"][i], out["dup_signal"][i], out["dup_distance"][i] = gid, sig, dist
-        out["dup_transform"][i], out["keep_reason"][i] = how, reason
-    arrays = [table.column("sample_id")] + [pa.array(out[c.name], c.type) for c in COLUMNS]
-    return pa.Table.from_arrays(arrays + [pa.array(checks, CHECKS_TYPE)], schema=OUTPUT_SCHEMA)
+    gid = table.column("sample_id").take(pa.array(rows[leader])).combine_chunks()
+    copy = np.flatnonzero(leader != np.arange(m))  # positions in ``rows`` of the copies (not kept)
+    lead = np.flatnonzero(leader == np.arange(m))
+    signal = groups.signal[copy]
+    dist = groups.distance[copy]
+    keeper_id = gid.take(pa.array(copy))
+    sig = _pick(["sha256", kind, "embedding"], signal)
+    how = _how(groups, copy, views)
+    reason = why_kept(scores, cfg.keeper, leader[copy], copy)
+    emb, codes = signal == similarity.groups.EMBEDDING, signal == similarity.groups.CODES
+    detail = _details(m, lead, sizes[lead], copy, signal, keeper_id, sig, how, reason)
+    value, threshold = np.full(m, np.nan), np.full(m, np.nan)
+    value[copy] = np.where(emb, 1.0 - dist.astype(np.float64), np.where(codes, dist, np.nan))
+    threshold[copy] = np.where(emb, cfg.cosine, np.where(codes, cfg.radius, np.nan))
+    failed = np.zeros(m, bool)
+    failed[copy] = True
+    record = {"code": "duplicate", "failed": failed, "value": value, "threshold": threshold, "detail": detail,
+              "op": _spread(_pick(["<", ">"], np.where(emb, 0, np.where(codes, 1, -1))), copy, m),
+              "unit": _spread(_pick(["cosine", "bits"], np.where(emb, 0, np.where(codes, 1, -1))), copy, m)}
+    seen = np.zeros(n, bool)
+    seen[rows] = True
+    full = {k: _spread(v, rows, n) if isinstance(v, pa.Array) else _scatter(v, rows, n) for k, v in record.items()
+            if k != "code"}
+    checks = columnar(n, seen, [{"code": "duplicate", **full}])
+    cols = {"group_id": gid, "group_size": pa.array(sizes.astype(np.int32)),
+            "dup_of": _spread(keeper_id, copy, m), "dup_signal": _spread(sig, copy, m),
+            "dup_distance": _spread(pa.array(dist, pa.float32()), copy, m), "dup_transform": _spread(how, copy, m),
+            "keep_reason": _spread(reason, copy, m)}
+    arrays = [table.column("sample_id")] + [_spread(cols[c.name], rows, n).cast(c.type) for c in COLUMNS]
+    return pa.Table.from_arrays(arrays + [checks], schema=OUTPUT_SCHEMA)
 
 
-def _how(groups: similarity.Groups, k: int, signal: str, views: list[similarity.View] | None) -> str | None:
-    """How member k relates to its keeper: same bytes are identical, codes name the matched views."""
-    if signal == "sha256":
-        return "identity"
-    if signal == "embedding" or views is None:
-        return None
-    return similarity.match_name(views, int(groups.view_kept[k]), int(groups.view_member[k]))
+def _details(m: int, lead: np.ndarray, lead_sizes: np.ndarray, copy: np.ndarray, signal: np.ndarray,
+             keeper_id: pa.Array, sig: pa.Array, how: pa.Array, reason: pa.Array) -> pa.Array:
+    """The duplicate check's detail for each of m rows: the kept ones say how many copies they won
+    over; a copy names its keeper, the signal and the criterion its keeper won on."""
+    def at(values: pa.Array, sel: np.ndarray) -> pa.Array:
+        return values.take(pa.array(sel, pa.int64()))
+
+    def join(*parts: Any) -> pa.Array:
+        return pc.binary_join_element_wise(*parts, "")
+
+    won = "; the kept copy wins on "
+    same, near, emb = (np.flatnonzero(signal == code) for code in (similarity.groups.SAME_BYTES,
+                                                                   similarity.groups.CODES,
+                                                                   similarity.groups.EMBEDDING))
+    alone = lead_sizes == 1
+    parts = [
+        (lead[alone], pa.repeat(pa.scalar("no copy", pa.string()), int(alone.sum()))),
+        (lead[~alone], join("kept over ", pc.cast(pa.array(lead_sizes[~alone] - 1), pa.string()), " copies")),
+        (copy[same], join("same bytes as ", at(keeper_id, same), won, at(reason, same))),
+        (copy[near], join("copy of ", at(keeper_id, near), " (", at(sig, near), ", ", at(how, near), ")", won,
+                          at(reason, near))),
+        (copy[emb], join("copy of ", at(keeper_id, emb), " (embedding)", won, at(reason, emb))),
+    ]
+    order = np.argsort(np.concatenate([p for p, _ in parts]), kind="stable")
+    return pa.concat_arrays([t.cast(pa.string()) for _, t in parts]).take(pa.array(order))
+
+
+def _pick(names: list[str], index: np.ndarray) -> pa.Array:
+    """names[index[k]] per entry, null where the index is negative."""
+    index = np.asarray(index, np.int64)
+    return pa.array(names, pa.string()).take(pa.array(index, mask=index < 0))
+
+
+def _spread(values: pa.Array, at: np.ndarray, m: int) -> pa.Array:
+    """An array of m entries: values[k] at position at[k], null elsewhere."""
+    index = np.full(m, -1, np.int64)
+    index[at] = np.arange(at.shape[0])
+    return values.take(pa.array(index, mask=index < 0))
+
+
+def _scatter(values: np.ndarray, at: np.ndarray, m: int) -> np.ndarray:
+    """A numpy array of m entries: values[k] at position at[k], NaN (or False) elsewhere."""
+    out = np.zeros(m, bool) if values.dtype == bool else np.full(m, np.nan)
+    out[at] = values
+    return out
+
+
+def _how(groups: similarity.Groups, copy: np.ndarray, views: list[similarity.View] | None) -> pa.Array:
+    """How each copy relates to its keeper: same bytes are identical, codes name the matched views
+    (similarity.match_name), an embedding link says nothing (null)."""
+    signal = groups.signal[copy]
+    index = np.full(copy.shape[0], -1, np.int64)
+    names = ["identity"]
+    index[signal == similarity.groups.SAME_BYTES] = 0
+    near = np.flatnonzero(signal == similarity.groups.CODES)
+    if views is not None and near.shape[0]:
+        k = len(views)
+        pair = groups.view_kept[copy[near]].astype(np.int64) * k + groups.view_member[copy[near]]
+        uniq, inv = np.unique(pair, return_inverse=True)
+        names += [similarity.match_name(views, int(p) // k, int(p) % k) for p in uniq]
+        index[near] = 1 + inv.ravel()
+    return _pick(names, index)

@@ -28,9 +28,10 @@ from typing import Any, Sequence
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 
 from ..checks import CHECKS_TYPE, check
-from .base import CheckSpec, Column, StageContext, checks_column, stage
+from .base import CheckSpec, Column, StageContext, checks_column, empty_checks, stage
 
 log = logging.getLogger(__name__)
 
@@ -87,7 +88,17 @@ def unit_hash(seed: int, key: str) -> float:
     return int.from_bytes(h[:8], "big") / 2.0**64
 
 
-def assign_groups(keys: Sequence[str], weights: Sequence[int], fraction: float, seed: int,
+def unit_hashes(seed: int, keys: Sequence[str] | pa.Array) -> np.ndarray:
+    """``unit_hash`` of each key; an Arrow array is read in blocks (no Python string per key held)."""
+    if not isinstance(keys, (pa.Array, pa.ChunkedArray)):
+        return np.array([unit_hash(seed, k) for k in keys], dtype=np.float64)
+    out = np.empty(len(keys), np.float64)
+    for lo in range(0, len(keys), 65536):
+        out[lo : lo + 65536] = [unit_hash(seed, k) for k in keys.slice(lo, 65536).to_pylist()]
+    return out
+
+
+def assign_groups(keys: Sequence[str] | pa.Array, weights: Sequence[int], fraction: float, seed: int,
                   tolerance: float = 0.02, strata: Sequence[str] | None = None) -> np.ndarray:
     """Per group: True for eval. `weights` are the groups' kept sizes (0: no kept sample).
 
@@ -99,16 +110,19 @@ def assign_groups(keys: Sequence[str], weights: Sequence[int], fraction: float, 
     """
     n = len(keys)
     w = np.asarray(weights, dtype=np.int64)
-    u = np.array([unit_hash(seed, k) for k in keys], dtype=np.float64)
+    u = unit_hashes(seed, keys)
     is_eval = u < fraction
     if fraction <= 0.0 or n == 0:
         return np.zeros(n, dtype=bool)
-    groups_of: dict[str, list[int]] = {}
-    for i in range(n):
-        groups_of.setdefault("" if strata is None else (strata[i] or ""), []).append(i)
-    for stratum, idx_list in groups_of.items():
-        idx = np.asarray(idx_list, dtype=np.int64)
-        _balance(idx, u, w, is_eval, fraction, tolerance, stratum)
+    if strata is None:
+        _balance(np.arange(n), u, w, is_eval, fraction, tolerance, "")
+        return is_eval
+    names, first, which = np.unique(np.array([s or "" for s in strata], dtype=object), return_index=True,
+                                    return_inverse=True)
+    order = np.argsort(which, kind="stable")
+    bounds = np.searchsorted(which[order], np.arange(len(names) + 1))
+    for g in np.argsort(first):  # strata in order of first appearance
+        _balance(order[bounds[g] : bounds[g + 1]], u, w, is_eval, fraction, tolerance, str(names[g]))
     return is_eval
 
 
@@ -146,13 +160,19 @@ def _balance(idx: np.ndarray, u: np.ndarray, w: np.ndarray, is_eval: np.ndarray,
 # --------------------------------------------------------------------------- groups
 
 
-def group_keys(sample_ids: Sequence[str], labels: np.ndarray, members: np.ndarray) -> list[str | None]:
-    """Each row's group key: the smallest sample_id among rows with its label (None outside `members`)."""
-    best: dict[int, str] = {}
-    for sid, lab, m in zip(sample_ids, labels.tolist(), members.tolist()):
-        if m and (lab not in best or sid < best[lab]):
-            best[lab] = sid
-    return [best[lab] if m else None for lab, m in zip(labels.tolist(), members.tolist())]
+def group_keys(sample_ids: pa.Array | pa.ChunkedArray, labels: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Each row's group, and each group's key row: groups are the distinct keys (the smallest
+    sample_id among rows with the row's label), numbered in key order; a group's key row is the
+    first row whose sample_id is the key."""
+    n = labels.shape[0]
+    rank = np.asarray(pc.rank(sample_ids, sort_keys="ascending", tiebreaker="dense").to_numpy(), np.int64)
+    key_rank = np.full(n, np.iinfo(np.int64).max, np.int64)
+    np.minimum.at(key_rank, labels, rank)
+    key_rank = key_rank[labels]
+    _, group = np.unique(key_rank, return_inverse=True)
+    is_key = np.flatnonzero(rank == key_rank)
+    _, first = np.unique(key_rank[is_key], return_index=True)
+    return group.ravel(), is_key[first]
 
 
 def _labels(table: pa.Table, members: np.ndarray, codes: Any, radius: int, check_radius: int,
@@ -167,7 +187,7 @@ def _labels(table: pa.Table, members: np.ndarray, codes: Any, radius: int, check
     ei: list[np.ndarray] = []
     ej: list[np.ndarray] = []
     if "group_id" in table.column_names:
-        gi, gj = _group_links(table.column("group_id").to_pylist(), members)
+        gi, gj = _group_links(table.column("group_id"), members)
         ei.append(gi)
         ej.append(gj)
     if codes is not None:
@@ -189,16 +209,17 @@ def _labels(table: pa.Table, members: np.ndarray, codes: Any, radius: int, check
     return similarity.components(n, np.concatenate(ei), np.concatenate(ej))
 
 
-def _group_links(group_ids: list[str | None], members: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Links from each member to the first row of its group_id."""
-    first: dict[str, int] = {}
-    gi, gj = [], []
-    for i, g in enumerate(group_ids):
-        if g is None or not members[i]:
-            continue
-        gi.append(first.setdefault(g, i))
-        gj.append(i)
-    return np.asarray(gi, dtype=np.int64), np.asarray(gj, dtype=np.int64)
+def _group_links(group_ids: pa.ChunkedArray | pa.Array, members: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Links from each member to the first member row of its group_id."""
+    if isinstance(group_ids, pa.ChunkedArray):
+        group_ids = group_ids.combine_chunks()
+    enc = group_ids.dictionary_encode()
+    rows = np.flatnonzero(members & np.asarray(enc.is_valid().to_numpy(zero_copy_only=False), dtype=bool))
+    group = np.asarray(enc.indices.fill_null(0).to_numpy(zero_copy_only=False), dtype=np.int64)[rows]
+    first = np.zeros(len(enc.dictionary), np.int64)
+    present, at = np.unique(group, return_index=True)
+    first[present] = rows[at]
+    return first[group], rows
 
 
 def _embeddings(table: pa.Table) -> tuple[np.ndarray, np.ndarray]:
@@ -368,34 +389,25 @@ def run_decontaminate(table: pa.Table, cfg: SplitConfig, ctx: StageContext) -> p
 def run(table: pa.Table, cfg: SplitConfig, ctx: StageContext) -> pa.Table:
     """Assign whole near-duplicate groups of live samples to train or eval."""
     n = table.num_rows
-    ids = table.column("sample_id").to_pylist()
+    ids = table.column("sample_id")
     codes = _codes(table, ctx)
-    split: list[str | None] = ["train"] * n
+    is_eval = np.zeros(n, dtype=bool)
     if cfg.eval_fraction > 0 and n:
         members = np.ones(n, dtype=bool)
         labels = _labels(table, members, codes, effective_radius(cfg, ctx.config), check_radius(ctx.config), cfg)
-        keys = group_keys(ids, labels, members)
-        gkeys = sorted(set(keys))
-        gindex = {k: g for g, k in enumerate(gkeys)}
-        weight = np.zeros(len(gkeys), dtype=np.int64)
-        for k in keys:
-            weight[gindex[k]] += 1
+        group, key_row = group_keys(ids, labels)
+        weight = np.bincount(group, minlength=key_row.shape[0])
         strata = None
         if cfg.stratify:
-            row_strata = _strata(table, cfg.stratify)
             # A group's stratum: that of its smallest sample_id (its key's row).
-            first: dict[str, tuple[str, str]] = {}
-            for sid, k, st in zip(ids, keys, row_strata):
-                if k not in first or sid < first[k][0]:
-                    first[k] = (sid, st)
-            strata = [first[k][1] for k in gkeys]
-        is_eval = assign_groups(gkeys, weight, cfg.eval_fraction, cfg.seed, cfg.share_tolerance, strata)
-        split = ["eval" if is_eval[gindex[k]] else "train" for k in keys]
+            row_strata = _strata(table, cfg.stratify)
+            strata = [row_strata[r] for r in key_row.tolist()]
+        keys = ids.take(pa.array(key_row)).combine_chunks()
+        is_eval = assign_groups(keys, weight, cfg.eval_fraction, cfg.seed, cfg.share_tolerance, strata)[group]
     if ctx.progress is not None:
         ctx.progress.advance(n)
-    return pa.Table.from_arrays([table.column("sample_id"), pa.array(split, pa.string()),
-                                 pa.array([[]] * n, type=CHECKS_TYPE)],
-                                names=["sample_id", "split", checks_column(NAME)])
+    split = pa.array(["train", "eval"], pa.string()).take(pa.array(is_eval.view(np.int8)))
+    return pa.Table.from_arrays([ids, split, empty_checks(n)], names=["sample_id", "split", checks_column(NAME)])
 
 
 def _identity(config: Any) -> dict:
