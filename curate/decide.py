@@ -91,7 +91,7 @@ def actions_for(config: Any) -> Actions:
 def _failed_rows(checks: pa.ChunkedArray | pa.Array, actions: Actions, action: str,
                  which: Callable[[str], bool] | None = None) -> np.ndarray:
     """Row indices with at least one failed check whose action is `action` (and whose code `which` accepts)."""
-    arr = checks.combine_chunks() if isinstance(checks, pa.ChunkedArray) else checks
+    arr = _array(checks) if isinstance(checks, pa.ChunkedArray) else checks
     if len(arr) == 0:
         return np.zeros(0, np.int64)
     flat = pc.list_flatten(arr)
@@ -170,11 +170,16 @@ def _first_per_row(parents: np.ndarray, keys: np.ndarray) -> np.ndarray:
     return np.sort(first)
 
 
+def _array(col: pa.ChunkedArray) -> pa.Array:
+    """One array of a chunked one; a single chunk is used as it is (combine_chunks would copy it)."""
+    return col.chunk(0) if col.num_chunks == 1 else col.combine_chunks()
+
+
 def _typed(col: Any) -> pa.Array:
     """A check column as one array of CHECKS_TYPE (a column whose optional fields were all null was
     inferred with null-typed fields)."""
     if isinstance(col, pa.ChunkedArray):
-        col = col.combine_chunks()
+        col = _array(col)
     elif not isinstance(col, pa.Array):  # Python rows (library callers)
         return pa.array(col, type=CHECKS_TYPE)
     return col if col.type == CHECKS_TYPE else col.cast(CHECKS_TYPE)
@@ -187,33 +192,62 @@ def verdict(stage_checks: Sequence[tuple[str, pa.ChunkedArray | pa.Array]], skip
     cols = [(stage, _typed(c)) for stage, c in stage_checks]
     reviewed_keep = rows_with([c for _, c in cols], actions, "keep", n, lambda code: code == OVERRIDE)
     first_reason = np.full(n, None, dtype=object)
-    parts: list[tuple[np.ndarray, pa.StructArray]] = []
+    names = _Names()
+    parts: list[_Part] = []
     for stage, col in cols:
         skip = skipped.get(stage)
         if skip is not None and skip.any() and skip_codes.get(stage):
-            parts.append(_skipped_records(stage, np.flatnonzero(skip), skip_codes[stage], first_reason))
+            parts.append(_skipped_part(stage, np.flatnonzero(skip), skip_codes[stage], first_reason, names))
         if len(col) == 0:
             continue
         flat = pc.list_flatten(col)
         if len(flat) == 0:
             continue
         parents = np.asarray(pc.list_parent_indices(col).to_numpy(zero_copy_only=False), dtype=np.int64)
-        rec = _stage_records(stage, flat, parents, actions, reviewed_keep)
-        parts.append((parents, rec))
-        drop = np.flatnonzero(_failed(rec) & _equal(rec.field("action"), "drop"))
+        part = _stage_part(stage, flat, parents, actions, reviewed_keep, names)
+        parts.append(part)
+        drop = np.flatnonzero(part.failed & (part.action == names.action("drop")))
         rows, pos = np.unique(parents[drop], return_index=True)
         fresh = np.equal(first_reason[rows], None)
-        codes = rec.field("code").take(pa.array(drop[pos[fresh]])).dictionary_encode()
+        codes = part.fields["code"].take(pa.array(drop[pos[fresh]])).dictionary_encode()
         first_reason[rows[fresh]] = np.array([actions.reason(c) for c in codes.dictionary.to_pylist()] + [None],
                                              dtype=object)[_ids(codes)]
-    if parts:
-        parents = np.concatenate([p for p, _ in parts])
-        order = np.argsort(parents, kind="stable")  # stage order within each row
-        parents = parents[order]
-        recs = pa.chunked_array([r for _, r in parts], LEDGER_CHECK).take(pa.array(order)).combine_chunks()
-    else:
-        parents, recs = np.zeros(0, np.int64), pa.array([], LEDGER_CHECK)
-    return _outcome(parents, recs, n, actions)
+    parents, recs, act, failed = _records(parts, names)
+    del parts
+    return _outcome(parents, recs, act, failed, names, n, actions)
+
+
+class _Names:
+    """Numbers for the stage names and actions of the verdict's records."""
+
+    def __init__(self) -> None:
+        self.stages: list[str] = []
+        self.actions: list[str] = []
+
+    def stage(self, name: str) -> int:
+        if name not in self.stages:
+            self.stages.append(name)
+        return self.stages.index(name)
+
+    def action(self, name: str) -> int:
+        if name not in self.actions:
+            self.actions.append(name)
+        return self.actions.index(name)
+
+
+@dataclass
+class _Part:
+    """The records of one stage's checks (or of its skipped rows), one entry per record."""
+
+    parents: np.ndarray  # int64: the row of each record
+    stage: int  # _Names.stages
+    status: np.ndarray  # int8: index into STATUS
+    action: np.ndarray  # int16: _Names.actions, -1 for none
+    failed: np.ndarray  # bool
+    fields: dict[str, pa.Array]  # code, detail, value, threshold, op, unit
+
+
+STATUS = ("pass", "fail", "skipped")
 
 
 def _failed(rec: pa.StructArray) -> np.ndarray:
@@ -230,29 +264,21 @@ def _ids(enc: pa.DictionaryArray) -> np.ndarray:
     return np.asarray(enc.indices.fill_null(len(enc.dictionary)).to_numpy(zero_copy_only=False), dtype=np.int64)
 
 
-def _stage_records(stage: str, flat: pa.StructArray, parents: np.ndarray, actions: Actions,
-                   reviewed_keep: np.ndarray) -> pa.StructArray:
+def _stage_part(stage: str, flat: pa.StructArray, parents: np.ndarray, actions: Actions,
+                reviewed_keep: np.ndarray, names: _Names) -> _Part:
     codes = flat.field("code")
     enc = codes.dictionary_encode()
     uniq = enc.dictionary.to_pylist()
-    # Actions by number: each code's action, then "overridden" (a reviewer kept the sample despite the check).
-    names = list(dict.fromkeys([actions.action(c) for c in uniq] + ["drop", "overridden"]))
-    act = np.array([names.index(actions.action(c)) for c in uniq], np.int64)[_ids(enc)]
+    act = np.array([names.action(actions.action(c)) for c in uniq] + [-1], np.int16)[_ids(enc)]
     failed = _failed(flat)
-    can = np.array([actions.overridable(c) for c in uniq], bool)[_ids(enc)]
-    over = failed & (act == names.index("drop")) & can & reviewed_keep[parents]
-    act[over] = names.index("overridden")
-    m = len(flat)
-    return pa.StructArray.from_arrays(
-        [pa.repeat(pa.scalar(stage, pa.string()), m), codes,
-         pa.array(["pass", "fail"], pa.string()).take(pa.array(failed.view(np.int8))),
-         pa.array(names, pa.string()).take(pa.array(act)),
-         flat.field("detail"), flat.field("value"), flat.field("threshold"), flat.field("op"), flat.field("unit"),
-         pa.array(failed)], fields=list(LEDGER_CHECK))
+    can = np.array([actions.overridable(c) for c in uniq] + [False], bool)[_ids(enc)]
+    over = failed & (act == names.action("drop")) & can & reviewed_keep[parents]
+    act[over] = names.action("overridden")  # a reviewer kept the sample despite this check
+    fields = {f: flat.field(f) for f in ("code", "detail", "value", "threshold", "op", "unit")}
+    return _Part(parents, names.stage(stage), failed.astype(np.int8), act, failed, fields)
 
 
-def _skipped_records(stage: str, rows: np.ndarray, codes: list[str],
-                     first_reason: np.ndarray) -> tuple[np.ndarray, pa.StructArray]:
+def _skipped_part(stage: str, rows: np.ndarray, codes: list[str], first_reason: np.ndarray, names: _Names) -> _Part:
     r = np.repeat(rows, len(codes))
     c = np.tile(np.asarray(codes, dtype=object), len(rows))
     because = pa.array(first_reason[r], pa.string())
@@ -260,15 +286,40 @@ def _skipped_records(stage: str, rows: np.ndarray, codes: list[str],
                         pc.binary_join_element_wise("not checked: dropped earlier (", because, ")", ""))
     m = len(r)
     none_f, none_s = pa.nulls(m, pa.float64()), pa.nulls(m, pa.string())
-    return r, pa.StructArray.from_arrays(
-        [pa.array(np.full(m, stage, dtype=object), pa.string()), pa.array(c, pa.string()),
-         pa.array(np.full(m, "skipped", dtype=object), pa.string()), none_s, detail,
-         none_f, none_f, none_s, none_s, pa.array(np.zeros(m, bool))], fields=list(LEDGER_CHECK))
+    fields = {"code": pa.array(c, pa.string()), "detail": detail, "value": none_f, "threshold": none_f,
+              "op": none_s, "unit": none_s}
+    return _Part(r, names.stage(stage), np.full(m, STATUS.index("skipped"), np.int8), np.full(m, -1, np.int16),
+                 np.zeros(m, bool), fields)
 
 
-def _outcome(parents: np.ndarray, recs: pa.StructArray, n: int, actions: Actions) -> Verdict:
-    act = recs.field("action")
-    failed = np.asarray(recs.field("failed").to_numpy(zero_copy_only=False), dtype=bool)
+def _records(parts: list[_Part], names: _Names) -> tuple[np.ndarray, pa.StructArray, np.ndarray, np.ndarray]:
+    """(row, record, action number, failed) of every record, by row and in stage order within a row.
+    Each field is gathered once into its final place (no per-stage copy of the records)."""
+    if not parts:
+        return np.zeros(0, np.int64), pa.array([], LEDGER_CHECK), np.zeros(0, np.int16), np.zeros(0, bool)
+    order = np.argsort(np.concatenate([p.parents for p in parts]), kind="stable")  # stage order within each row
+    at = pa.array(order)
+
+    def gather(values: list[np.ndarray]) -> np.ndarray:
+        return np.concatenate(values)[order]
+
+    def field(name: str) -> pa.Array:
+        return _array(pa.chunked_array([p.fields[name] for p in parts], LEDGER_CHECK.field(name).type).take(at))
+
+    stage = gather([np.full(p.parents.shape[0], p.stage, np.int16) for p in parts])
+    status = gather([p.status for p in parts])
+    act = gather([p.action for p in parts])
+    failed = gather([p.failed for p in parts])
+    recs = pa.StructArray.from_arrays(
+        [pa.array(names.stages, pa.string()).take(pa.array(stage)), field("code"),
+         pa.array(STATUS, pa.string()).take(pa.array(status)),
+         pa.array(names.actions, pa.string()).take(pa.array(act, mask=act < 0)), field("detail"), field("value"),
+         field("threshold"), field("op"), field("unit"), pa.array(failed)], fields=list(LEDGER_CHECK))
+    return gather([p.parents for p in parts]), recs, act, failed
+
+
+def _outcome(parents: np.ndarray, recs: pa.StructArray, act: np.ndarray, failed: np.ndarray, names: _Names, n: int,
+             actions: Actions) -> Verdict:
     codes = recs.field("code")
     enc = codes.dictionary_encode()
     code_id = _ids(enc)
@@ -278,18 +329,19 @@ def _outcome(parents: np.ndarray, recs: pa.StructArray, n: int, actions: Actions
         idx = np.flatnonzero(mask)
         return idx[_first_per_row(parents[idx], code_id[idx])]
 
-    marking = np.asarray(pc.fill_null(pc.is_in(act, value_set=pa.array(MARKING)), False).to_numpy(
-        zero_copy_only=False), dtype=bool)
-    drop = pick(failed & _equal(act, "drop"))
+    def acting(*which: str) -> np.ndarray:
+        return np.isin(act, [names.actions.index(a) for a in which if a in names.actions])
+
+    drop = pick(failed & acting("drop"))
     reasons = _lists(parents[drop], reason_of.take(pa.array(code_id[drop])), n)
-    mark = pick(failed & (marking | _equal(codes, OVERRIDE)))
+    mark = pick(failed & (acting(*MARKING) | _equal(codes, OVERRIDE)))
     flags = _lists(parents[mark], codes.take(pa.array(mark)), n)
-    red = pick(failed & _equal(act, "redact"))
+    red = pick(failed & acting("redact"))
     redacted = _lists(parents[red], codes.take(pa.array(red)), n)
     kept = np.ones(n, bool)
     kept[parents[drop]] = False
     quarantined = np.zeros(n, bool)
-    quarantined[parents[failed & _equal(act, "quarantine")]] = True
+    quarantined[parents[failed & acting("quarantine")]] = True
     quarantined &= kept
     first = np.full(n, -1, np.int64)
     if len(drop):

@@ -289,6 +289,8 @@ def test_mih_paths_with_tiny_blocks(monkeypatch):
     # Force the chunked and general (crowded bucket) paths with small work blocks.
     monkeypatch.setattr(mih, "BLOCK_PAIRS", 64)
     monkeypatch.setattr(mih, "_DENSE_SLOTS", 16)
+    monkeypatch.setattr(mih, "_DENSE_HITS", 5)
+    monkeypatch.setattr(mih, "_SOURCE_BUCKETS", 3)
     monkeypatch.setattr(mih, "_PAD_MAX", 2)
     codes = _clustered_codes(11, 1500, 4, 5)
     for m in (2, 3, 4):
@@ -298,6 +300,54 @@ def test_mih_paths_with_tiny_blocks(monkeypatch):
         got = S.cross_pairs(codes[:700], codes[700:], 6, substrings=m, threads=2)
         ref = H.brute_cross_pairs(codes[:700], codes[700:], 6)
         assert all(np.array_equal(x, y) for x, y in zip(got, ref))
+
+
+@pytest.mark.parametrize("substrings", [0, 3, 4])
+def test_tagged_join_leaves_out_exactly_the_pairs_of_one_tag(monkeypatch, substrings):
+    # Reference: the quadratic scan without tags, filtered afterwards.
+    monkeypatch.setattr(mih, "_SOURCE_BUCKETS", 64)
+    monkeypatch.setattr(mih, "_DENSE_HITS", 5)
+    u = np.unique(_clustered_codes(4, 1200, 6, 6))
+    tags = np.random.default_rng(4).integers(-1, 40, u.shape[0])
+    i, j, d = mih.brute_join(u, None, 7)
+    apart = (tags[i] != tags[j]) | (tags[i] < 0)
+    want = sorted(zip(i[apart].tolist(), j[apart].tolist(), d[apart].tolist()))
+    got = mih.unique_join(u, None, 7, substrings, threads=2, tags=tags)
+    assert sorted(zip(*(x.tolist() for x in got))) == want
+    assert len(want) < len(i)  # some pairs were left out
+    with pytest.raises(ValueError):
+        mih.unique_join(u, u, 7, substrings, tags=tags)
+
+
+def test_code_graph_with_near_views_on_the_multi_index_path(monkeypatch):
+    # Each sample's views are near each other (as crops of one picture are); some samples are near
+    # copies of others, and some share one view exactly with a sample whose other view another
+    # sample shares (t holds s's view 0, u holds s's view 1: t and u are within the radius only
+    # through s's two views). Components and leaders through the code graph (multi-index search,
+    # tiny blocks) equal those of the sample pairs the quadratic scan finds.
+    monkeypatch.setattr(mih, "_SOURCE_BUCKETS", 64)
+    monkeypatch.setattr(mih, "_DENSE_HITS", 64)
+    monkeypatch.setattr(mih, "BLOCK_PAIRS", 500)
+    rng = np.random.default_rng(9)
+    n, k = 600, 5
+    base = rng.integers(0, 2**63, (n, 1), dtype=np.int64).astype(np.uint64)
+    codes = base ^ rng.integers(0, 2**6, (n, k), dtype=np.int64).astype(np.uint64)
+    copy = rng.integers(0, n, 60)
+    codes[rng.integers(0, n, 60)] = codes[copy] ^ (np.uint64(1) << rng.integers(0, 64, (60, 1)).astype(np.uint64))
+    s, t, u = rng.permutation(n)[:120].reshape(3, 40)
+    codes[t, 0], codes[u, 0] = codes[s, 0], codes[s, 1]
+    ref = S.sample_pairs(codes, 6, identity=3, substrings=0)
+    rank = rng.integers(0, n, n)
+    adj: dict[int, set] = {a: set() for a in range(n)}
+    for a, b in zip(ref.i.tolist(), ref.j.tolist()):
+        adj[a].add(b)
+        adj[b].add(a)
+    want = _sequential_leaders(rank.tolist(), adj)
+    for m in (0, 2, 3):
+        comp = S.sample_components(codes, 6, identity=3, substrings=m, threads=2)
+        assert np.array_equal(comp, S.components(n, ref.i, ref.j))
+        g = S.group(rank, S.Signals(codes=codes, identity=3, radius=6), substrings=m, threads=2)
+        assert g.leader.tolist() == want
 
 
 def test_random_codes_at_scale_use_mih_and_stay_exact():

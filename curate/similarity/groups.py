@@ -87,11 +87,20 @@ class UnionFind:
 
 
 def graph_components(n: int, graph: CodeGraph) -> np.ndarray:
-    """Component label (smallest member) of each of n samples linked by a ``CodeGraph``."""
-    t = n + np.arange(graph.tokens, dtype=np.int64)
-    i = np.concatenate([graph.own_s, graph.reach_s, t[graph.edge_u]])
-    j = np.concatenate([t[graph.own_u], t[graph.reach_u], t[graph.edge_v]])
-    return components(n + graph.tokens, i, j)[:n]
+    """Component label (smallest member) of each of n samples linked by a ``CodeGraph``.
+
+    Only tokens that can link two samples take part (several owners, an edge or a reach); a token
+    of one sample alone would join nothing. They are numbered n, n+1, ... after the samples.
+    """
+    useful = np.bincount(graph.own_u, minlength=graph.tokens) >= 2
+    useful[graph.edge_u] = True
+    useful[graph.edge_v] = True
+    useful[graph.reach_u] = True
+    node = np.cumsum(useful) - 1 + n  # the node number of each useful token
+    own = useful[graph.own_u]
+    i = np.concatenate([graph.own_s[own], graph.reach_s, node[graph.edge_u]])
+    j = np.concatenate([node[graph.own_u[own]], node[graph.reach_u], node[graph.edge_v]])
+    return components(n + int(useful.sum()), i, j)[:n]
 
 
 def sample_components(codes2d: Any, radius: int, identity: int | None = None, checks: Any = None,
@@ -359,8 +368,9 @@ def group(rank: Any, signals: Signals, *, substrings: int | None = None, threads
         codes = codes[:, None] if codes.ndim == 1 else codes
         rows = np.arange(n) if signals.has_codes is None else np.flatnonzero(np.asarray(signals.has_codes, bool))
         if rows.shape[0]:
-            chk = None if signals.checks is None else np.asarray(signals.checks, dtype=np.uint64).reshape(codes.shape)[rows]
-            g = code_graph(codes[rows], valid_radius(signals.radius), signals.identity, chk, signals.check_radius,
+            pick = (lambda a: a if rows.shape[0] == n else a[rows])  # noqa: E731  (no copy when all are valid)
+            chk = None if signals.checks is None else pick(np.asarray(signals.checks, dtype=np.uint64).reshape(codes.shape))
+            g = code_graph(pick(codes), valid_radius(signals.radius), signals.identity, chk, signals.check_radius,
                            substrings, threads)
             graphs.append(_rows_graph(g, rows))
     if signals.emb_pairs is not None:

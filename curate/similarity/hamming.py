@@ -357,57 +357,59 @@ class CodeGraph(NamedTuple):
     edge_v: np.ndarray
 
 
+def _index_type(n: int) -> type:
+    """The integer type for positions below n: int32 when it fits (half the memory), else int64."""
+    return np.int32 if n < 2**31 else np.int64
+
+
 def _unique_pairs(s: np.ndarray, u: np.ndarray, n_u: int) -> tuple[np.ndarray, np.ndarray]:
     key = np.unique(s.astype(np.int64) * max(n_u, 1) + u.astype(np.int64))
     return key // max(n_u, 1), key % max(n_u, 1)
 
 
-def _tokens(main: np.ndarray, check: np.ndarray | None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Distinct (main, check) pairs: (main codes, check codes, token of each input)."""
-    if check is None:
-        u, inv = np.unique(main, return_inverse=True)
-        return u, np.zeros_like(u), inv.ravel()
-    order = np.lexsort((check, main))
-    m, c = main[order], check[order]
-    first = np.concatenate(([True], (m[1:] != m[:-1]) | (c[1:] != c[:-1]))) if m.shape[0] else np.zeros(0, bool)
-    tok = np.cumsum(first) - 1
-    inv = np.empty_like(tok)
-    inv[order] = tok
-    return m[first], c[first], inv
+def _tokens(main: np.ndarray, check: np.ndarray | None) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Distinct (main, check) pairs ("tokens"), sorted: (the distinct main codes, each token's main
+    code as an index into them, each token's check code (zeros without check codes), the token of
+    each input)."""
+    idx = _index_type(main.shape[0] + 1)
+    order = np.argsort(main, kind="stable") if check is None else np.lexsort((check, main))
+    m = main[order]
+    new_main = np.ones(m.shape[0], bool)
+    new_main[1:] = m[1:] != m[:-1]
+    new_token = new_main.copy()
+    c = None if check is None else check[order]
+    if c is not None:
+        new_token[1:] |= c[1:] != c[:-1]
+    token = np.cumsum(new_token, dtype=idx) - 1
+    inv = np.empty_like(token)
+    inv[order] = token
+    del order, token
+    token_main = (np.cumsum(new_main, dtype=idx) - 1)[new_token]
+    token_check = np.zeros(token_main.shape[0], np.uint64) if c is None else c[new_token]
+    return m[new_main], token_main, token_check, inv
 
 
 def _common(values: np.ndarray, group: np.ndarray, n_groups: int) -> np.ndarray:
     """Per group (0..n_groups-1), the value all its members share, or -1 where they differ."""
-    lo = np.full(n_groups, np.iinfo(np.int64).max, np.int64)
-    hi = np.full(n_groups, -1, np.int64)
+    lo = np.full(n_groups, np.iinfo(values.dtype).max, values.dtype)
+    hi = np.full(n_groups, -1, values.dtype)
     np.minimum.at(lo, group, values)
     np.maximum.at(hi, group, values)
-    return np.where(lo == hi, lo, -1)
+    return np.where(lo == hi, lo, -1).astype(values.dtype)
 
 
-def _token_pairs(pa: np.ndarray, ca: np.ndarray, pb: np.ndarray | None, cb: np.ndarray | None, radius: int,
-                 check_radius: int, substrings: int | None, threads: int,
-                 holder: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
-    """Token pairs (a, b) whose main codes are within ``radius`` and check codes within
-    ``check_radius`` (pb None: pairs a < b of one token set, leaving out pairs of two tokens with
-    the same non-negative ``holder``)."""
-    ua, inv_a = np.unique(pa, return_inverse=True)
-    inv_a = inv_a.ravel()
-    mem_a = _members(inv_a, ua.shape[0])
-    if pb is None:
-        tags = None if holder is None else _common(holder, inv_a, ua.shape[0])
-        ui, uj, _ = mih.unique_join(ua, None, radius, substrings, threads, tags)
-        x, y, _ = _expand_members(ui, uj, np.zeros(ui.shape[0], np.int16), mem_a, mem_a)
-        x0, y0 = _same_code_pairs(mem_a)
-        x, y, cb = np.concatenate([x, x0]), np.concatenate([y, y0]), ca
-    else:
-        ub, inv_b = np.unique(pb, return_inverse=True)
-        ui, uj, _ = unique_cross(ua, ub, radius, substrings, threads)
-        x, y, _ = _expand_members(ui, uj, np.zeros(ui.shape[0], np.int16), mem_a,
-                                  _members(inv_b.ravel(), ub.shape[0]))
-    ok = hamming(ca[x], cb[y]) <= check_radius
-    if holder is not None:
-        ok &= (holder[x] != holder[y]) | (holder[x] < 0)
+def _token_pairs(main: np.ndarray, token_main: np.ndarray, token_check: np.ndarray, holder: np.ndarray,
+                 radius: int, check_radius: int, substrings: int | None, threads: int) -> tuple[np.ndarray, np.ndarray]:
+    """Token pairs a < b (``_tokens`` order) whose main codes are within ``radius`` and check codes
+    within ``check_radius``, leaving out pairs of two tokens with the same non-negative ``holder``."""
+    n_main = main.shape[0]
+    ui, uj, _ = mih.unique_join(main, None, radius, substrings, threads, _common(holder, token_main, n_main))
+    counts = np.bincount(token_main, minlength=n_main)
+    members = (np.arange(token_main.shape[0], dtype=token_main.dtype), np.cumsum(counts) - counts, counts)
+    x, y, _ = _expand_members(ui, uj, np.zeros(ui.shape[0], np.int16), members, members)
+    x0, y0 = _same_code_pairs(members)
+    x, y = np.concatenate([x, x0]), np.concatenate([y, y0])
+    ok = (hamming(token_check[x], token_check[y]) <= check_radius) & ((holder[x] != holder[y]) | (holder[x] < 0))
     return x[ok].astype(np.int64), y[ok].astype(np.int64)
 
 
@@ -425,23 +427,30 @@ def code_graph(codes2d: Any, radius: int, identity: int | None = None, checks: A
 
     Tokens are the distinct views of every kind; one search over all of them, then pairs of two
     identity tokens become edges and pairs of a transformed with an identity token become reaches.
+    Code k of the flattened (n, K) array is view k % K of sample k // K.
     """
     r = valid_radius(radius)
     c = _rows(codes2d)
+    n, k = c.shape
     _, _, ident = _split_views(c, identity)
     chk = _checks_like(checks, c)
-    flat, owner, view = _flatten(c)
-    is_id = view < ident
-    tp, tc, inv = _tokens(flat, None if chk is None else as_codes(chk.reshape(-1)))
-    t = tp.shape[0]
+    main, token_main, token_check, inv = _tokens(as_codes(c.reshape(-1)),
+                                                 None if chk is None else as_codes(chk.reshape(-1)))
+    t = token_main.shape[0]
+    owner = np.arange(n * k, dtype=inv.dtype) // k
+    is_id = np.arange(n * k) % k < ident
     has_id = np.zeros(t, bool)
     has_id[inv[is_id]] = True
     has_t = np.zeros(t, bool)
     has_t[inv[~is_id]] = True
-    own_s, own_u = _unique_pairs(owner[is_id], inv[is_id], t)
     # Tokens of one picture's crops are close to each other (about K*(K-1)/2 pairs per sample); a
     # pair of tokens that only one sample holds links that sample to itself, so it is not listed.
-    x, y = _token_pairs(tp, tc, None, None, r, check_radius, substrings, threads, _common(owner, inv, t))
+    holder = _common(owner, inv, t)
+    del owner
+    x, y = _token_pairs(main, token_main, token_check, holder, r, check_radius, substrings, threads)
+    del main, token_main, token_check, holder
+    owner = np.arange(n * k, dtype=inv.dtype) // k
+    own_s, own_u = _unique_pairs(owner[is_id], inv[is_id], t)
     e = has_id[x] & has_id[y]
     eu, ev = np.minimum(x[e], y[e]), np.maximum(x[e], y[e])
     rt, ru = _reaches(x, y, has_id, has_t)

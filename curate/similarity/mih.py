@@ -17,8 +17,9 @@ import numpy as np
 BITS = 64
 # Below this many candidate pairs a quadratic scan is cheaper than building tables (common practice).
 BRUTE_MAX_PAIRS = 4_000_000
-# Pairs checked per block in quadratic scans and candidate expansion (bounds memory: ~16 bytes/pair).
-BLOCK_PAIRS = 8_000_000
+# Pairs checked per block in quadratic scans and candidate expansion (bounds memory: about 60 bytes
+# per candidate expanded).
+BLOCK_PAIRS = 1_000_000
 # Widest substring addressed by a direct table (2**24 int32 entries = 64 MiB).
 MAX_TABLE_BITS = 24
 
@@ -139,7 +140,8 @@ def _plan(n_a: int, n_b: int, radius: int, self_join: bool) -> int:
 
 
 class _Table:
-    """One substring of a set of codes: codes sorted by substring, with bucket boundaries."""
+    """One substring of a set of codes: the order that sorts them by substring, with bucket
+    boundaries (positions below are in that order; ``code`` reads the codes there)."""
 
     def __init__(self, codes: np.ndarray, shift: int, width: int, direct: bool):
         if width >= BITS:
@@ -148,7 +150,9 @@ class _Table:
             sub = ((codes >> np.uint64(shift)) & np.uint64((1 << width) - 1)).astype(np.int64)
         self.order = np.argsort(sub, kind="stable")
         ss = sub[self.order]
-        self.codes = codes[self.order]
+        if codes.shape[0] < 2**31:
+            self.order = self.order.astype(np.int32)
+        self.source = codes
         n = ss.shape[0]
         if n:
             self.starts = np.flatnonzero(np.concatenate(([True], ss[1:] != ss[:-1])))
@@ -162,10 +166,14 @@ class _Table:
             self.index = np.full(1 << width, -1, dtype=np.int32)
             self.index[self.values] = np.arange(self.values.shape[0], dtype=np.int32)
 
+    def code(self, pos: np.ndarray) -> np.ndarray:
+        """The codes at sorted positions."""
+        return self.source[self.order[pos]]
+
     def lookup(self, keys: np.ndarray) -> np.ndarray:
         """Bucket number of each substring value, -1 where no code has it."""
         if self.index is not None:
-            return self.index[keys].astype(np.int64)
+            return self.index[keys]
         pos = np.searchsorted(self.values, keys)
         pos = np.minimum(pos, max(self.values.shape[0] - 1, 0))
         found = self.values.shape[0] > 0
@@ -265,10 +273,12 @@ _NS_TAKE, _NS_SLOT, _NS_GENERAL = 8.0, 2.5, 45.0
 # Empty slots: a-side levels hold _FILL and b-side levels its complement, so two empty slots never
 # match; an empty slot against a real code may, and is then discarded by its bucket's count.
 _FILL = np.uint64(0x5555555555555555)
-# Bucket pairs per dense step (bounds the P*P temporaries to about 64 MiB).
-_DENSE_SLOTS = 1 << 23
+# Slots of a dense step, P*P per bucket pair (bounds its temporaries to about 16 MiB).
+_DENSE_SLOTS = 1 << 21
+# Source buckets looked up at once, for every pattern (bounds the lookup temporaries).
+_SOURCE_BUCKETS = 1 << 19
 # Hits of a dense step resolved at once (bounds the index arrays: about 60 bytes per hit).
-_DENSE_HITS = 1 << 20
+_DENSE_HITS = 1 << 18
 
 
 def _pad_width(counts_a: np.ndarray, counts_b: np.ndarray) -> int:
@@ -302,7 +312,7 @@ def _levels(t: "_Table", p: int, fill: np.uint64) -> np.ndarray:
     out = np.full((p, nb), fill, dtype=np.uint64)
     for lvl in range(p):
         has = np.flatnonzero(t.counts > lvl)
-        out[lvl, has] = t.codes[t.starts[has] + lvl]
+        out[lvl, has] = t.code(t.starts[has] + lvl)
     return out
 
 
@@ -325,7 +335,8 @@ class _TableJoin:
         self.tb = self.ta if self.self_join else _Table(b, shift, width, direct)
         self.pw = pw = _pad_width(self.ta.counts, self.tb.counts)
         self.lev_a = _levels(self.ta, pw, _FILL)
-        self.lev_b = _levels(self.tb, pw, ~_FILL)
+        # A self-join reads its b side from the same levels and refills the empty slots (``dense``).
+        self.lev_b = None if self.self_join else _levels(self.tb, pw, ~_FILL)
         self.fits_a, self.fits_b = self.ta.counts <= pw, self.tb.counts <= pw
         self.earlier = [(np.uint64(s), np.uint64((1 << w) - 1), r) for (s, w), r in zip(blocks[:k], radii[:k]) if r >= 0]
         self.out_i: list[np.ndarray] = []
@@ -342,21 +353,23 @@ class _TableJoin:
     def run(self) -> Join:
         ta, tb = self.ta, self.tb
         for hb, pats in _pattern_groups(self.width, self.rk):
-            if self.self_join and hb:
-                # Each unordered bucket pair once: from the bucket whose highest differing bit is 0.
-                src_all = np.flatnonzero((ta.values & hb) == 0)
-            else:
-                src_all = np.arange(ta.values.shape[0])
-            vals = ta.values[src_all]
-            for f in pats.tolist():
-                if self.self_join and not f:
-                    src = src_all[ta.counts[src_all] >= 2]
-                    self.check(src, src, triangle=True)
-                    continue
-                dst = tb.lookup(vals ^ f if f else vals)
-                hit = np.flatnonzero(dst >= 0)
-                if hit.shape[0]:
-                    self.check(src_all[hit], dst[hit])
+            for lo in range(0, ta.values.shape[0], _SOURCE_BUCKETS):  # in blocks: temporaries stay small
+                values = ta.values[lo : lo + _SOURCE_BUCKETS]
+                if self.self_join and hb:
+                    # Each unordered bucket pair once: from the bucket whose highest differing bit is 0.
+                    src_all = lo + np.flatnonzero((values & hb) == 0)
+                else:
+                    src_all = lo + np.arange(values.shape[0])
+                vals = ta.values[src_all]
+                for f in pats.tolist():
+                    if self.self_join and not f:
+                        src = src_all[ta.counts[src_all] >= 2]
+                        self.check(src, src, triangle=True)
+                        continue
+                    dst = tb.lookup(vals ^ f if f else vals)
+                    hit = np.flatnonzero(dst >= 0)
+                    if hit.shape[0]:
+                        self.check(src_all[hit], dst[hit])
         if not self.out_i:
             return _empty_join()
         return np.concatenate(self.out_i), np.concatenate(self.out_j), np.concatenate(self.out_d)
@@ -376,7 +389,7 @@ class _TableJoin:
         """Record candidate positions x (in ta) and y (in tb) within radius, unless an earlier
         substring finds them too."""
         if xor is None:
-            xor = self.ta.codes[x] ^ self.tb.codes[y]
+            xor = self.ta.code(x) ^ self.tb.code(y)
             d = _popcount(xor)
             ok = np.flatnonzero(d <= self.radius)
             x, y, xor, d = x[ok], y[ok], xor[ok], d[ok]
@@ -400,7 +413,13 @@ class _TableJoin:
             n = s_.shape[0]
             va, vb = self.buf_a[:, :n], self.buf_b[:, :n]
             np.take(self.lev_a, s_, axis=1, out=va)
-            np.take(self.lev_b, d_, axis=1, out=vb)
+            if self.lev_b is None:
+                np.take(self.lev_a, d_, axis=1, out=vb)
+                count = tb.counts[d_]
+                for lvl in range(1, pw):  # level 0 is never empty
+                    vb[lvl, count <= lvl] = ~_FILL
+            else:
+                np.take(self.lev_b, d_, axis=1, out=vb)
             xr = self.buf_x[: pw * pw * n].reshape(pw, pw, n)
             np.bitwise_xor(va[:, None, :], vb[None, :, :], out=xr)
             dist = self.buf_d[: pw * pw * n].reshape(pw, pw, n)
@@ -446,8 +465,8 @@ def _join(a: np.ndarray, b: np.ndarray | None, radius: int, m: int, threads: int
             parts = list(ex.map(lambda k: _TableJoin(a, b, k, blocks, radii, radius, tags).run(), ks))
     else:
         parts = [_TableJoin(a, b, k, blocks, radii, radius, tags).run() for k in ks]
-    i = np.concatenate([p[0] for p in parts])
-    j = np.concatenate([p[1] for p in parts])
+    i = np.concatenate([p[0] for p in parts]).astype(np.int64)
+    j = np.concatenate([p[1] for p in parts]).astype(np.int64)
     d = np.concatenate([p[2] for p in parts])
     if b is None:
         i, j = np.minimum(i, j), np.maximum(i, j)

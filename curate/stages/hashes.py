@@ -118,7 +118,10 @@ def identity() -> dict:
 
 def codes_matrix(column: pa.ChunkedArray | pa.Array, k: int) -> tuple[np.ndarray, np.ndarray]:
     """A hash column -> (codes uint64 (n, k), valid bool (n,)); rows of null entries are zeros."""
-    arr = column.combine_chunks() if isinstance(column, pa.ChunkedArray) else column
+    if isinstance(column, pa.ChunkedArray):
+        arr = column.chunk(0) if column.num_chunks == 1 else column.combine_chunks()
+    else:
+        arr = column
     n = len(arr)
     valid = np.asarray(arr.is_valid().to_numpy(zero_copy_only=False), dtype=bool) if n else np.zeros(0, bool)
     codes = np.zeros((n, k), dtype=np.uint64)
@@ -131,7 +134,8 @@ def codes_matrix(column: pa.ChunkedArray | pa.Array, k: int) -> tuple[np.ndarray
         # silently drops the low bits of every 64-bit code.
         import pyarrow.compute as pc
 
-        child = pc.fill_null(arr.values, 0).to_numpy(zero_copy_only=False)
+        child = (arr.values if arr.values.null_count == 0 else pc.fill_null(arr.values, 0)).to_numpy(
+            zero_copy_only=False)
         flat = child[arr.offset * k : (arr.offset + n) * k].astype(np.uint64, copy=False)
         codes[:] = flat.reshape(n, k)
     else:  # variable-size lists (e.g. read back from another writer)
@@ -155,7 +159,9 @@ class Codes:
     views: list[similarity.View]  # what each column of `main` is
 
     def rows(self, rows: np.ndarray) -> Codes:
-        """The same codes for a subset of rows."""
+        """The same codes for a subset of rows (increasing row numbers); all rows: these codes, not a copy."""
+        if len(rows) == self.valid.shape[0]:
+            return self
         return Codes(self.main[rows], None if self.checks is None else self.checks[rows], self.valid[rows],
                      self.identity, self.views)
 
@@ -166,5 +172,7 @@ def read_codes(table: pa.Table, cfg: HashesConfig) -> Codes | None:
         return None
     s = code_settings(cfg)
     c, valid = codes_matrix(table.column(CODES), similarity.code_count(s))
-    main, checks = similarity.split_codes(c, s)
+    # Each part contiguous: the Hamming search flattens them, and would copy strided views.
+    main, checks = (None if x is None else np.ascontiguousarray(x) for x in similarity.split_codes(c, s))
+    del c
     return Codes(main, checks, valid, similarity.identity_count(s), similarity.views(s))
