@@ -7,8 +7,11 @@ codes with planted near-copies, sizes, image quality, the true and shuffled agre
 runs, in one process per N: caption_repeats, agreement, neardup (perceptual codes and bytes; the
 semantic search over embeddings is measured in bench/cosine_search.py), split, and the verdict
 over every check. It prints seconds and peak RSS per step, and extrapolates to 100M and 1B.
+With --digest it adds a sha256 of every stage output and the verdict, and whether it equals the
+digest the row-wise implementation gave (REFERENCE_DIGESTS), so a rewrite shows it kept the results.
 
     .venv/bin/python bench/scale_plan.py --rows 1000000 --json
+    .venv/bin/python bench/scale_plan.py --rows 100000 --json --digest
     .venv/bin/python bench/scale_plan.py                      # 100k and 1M, then the extrapolation
 """
 from __future__ import annotations
@@ -99,6 +102,14 @@ def synth(n: int, seed: int = 0) -> pa.Table:
     })
 
 
+# ``digest`` of the implementation before the columnar rewrite (row-wise Python; commit 100e024,
+# numpy 2.4.6 drawing the synthetic rows), by rows: a change that keeps every result keeps these.
+REFERENCE_DIGESTS = {
+    20_000: "b2ce3d845e5e9666153efcb550fbe76ae49d3f3e40ecf41caf2ef0299491a612",
+    100_000: "e452ced1e6c19119487fd99ac289b73672af79bdf61585fd7678088007487283",
+    1_000_000: "c255c45717c51658caf8e5e3116cbf301a4647961184dc0cce00243e53069858",
+}
+
 # Stage output columns the digest covers, in this order (the verdict's fields follow).
 OUTPUTS = ("caption_images", "caption_repeats.checks", "clip_score", "agreement.checks", "group_id", "group_size",
            "dup_of", "dup_signal", "dup_distance", "dup_transform", "keep_reason", "neardup.checks", "split",
@@ -159,6 +170,8 @@ def one(n: int, with_digest: bool = False) -> dict:
     out = {"rows": n, "steps": steps, "seconds": total, "peak_rss_mb": round(_rss_mb()), "kept": kept}
     if with_digest:
         out["digest"] = digest(table, v)
+        if n in REFERENCE_DIGESTS:
+            out["same_as_reference"] = out["digest"] == REFERENCE_DIGESTS[n]
     return out
 
 
@@ -166,7 +179,8 @@ def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--rows", type=int, action="append", help="rows to run (repeatable); default 100k and 1M")
     ap.add_argument("--json", action="store_true", help="print one JSON line")
-    ap.add_argument("--digest", action="store_true", help="add a sha256 of every output and the verdict per run")
+    ap.add_argument("--digest", action="store_true", help="add a sha256 of every output and the verdict per run, "
+                    "and whether it equals the recorded reference for that many rows")
     ap.add_argument("--child", type=int, help=argparse.SUPPRESS)
     a = ap.parse_args()
     if a.child:

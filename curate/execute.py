@@ -10,7 +10,6 @@ image) run in chunks of rows, so memory stays bounded per shard.
 """
 from __future__ import annotations
 
-import ctypes
 import hashlib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -20,7 +19,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from . import layout, plugins, workdir
+from . import layout, memory, plugins, workdir
 from .checks import CHECKS_TYPE
 from .errors import CurateError, StageError
 from .stages import REGISTRY, StageContext
@@ -159,21 +158,10 @@ def call_stage(name: str, table: pa.Table, config: Any, rows: list[int] | None =
         raise StageError(f"{type(e).__name__}: {e}", stage=name, shard=shard) from e
     res = _conform(res, sub, st, view, shard or "")
     out = _expand(res, table.column("sample_id"), rows)
-    if st.kind == "global":
+    if st.kind == "global":  # its temporaries, kept by the allocators, would sit under the next stage
         del sub, res
-        release_memory()
+        memory.release()
     return out
-
-
-def release_memory() -> None:
-    """Hand freed memory back to the operating system. Arrow's pool and glibc's arenas keep what was
-    freed for reuse; after a corpus-wide stage that is its temporaries (about 0.5 KB per sample,
-    measured with bench/scale_plan.py), and the next stage's peak would sit on top of it."""
-    pa.default_memory_pool().release_unused()
-    try:
-        ctypes.CDLL(None).malloc_trim(0)  # glibc only; other C libraries return memory their own way
-    except (OSError, AttributeError):
-        pass
 
 
 def _run_stages(table: pa.Table, task: Task, offset: int, progress: Any, caches: dict[str, _Cache],

@@ -15,6 +15,7 @@ from typing import Any, NamedTuple
 
 import numpy as np
 
+from ..memory import trim_heap
 from . import mih
 
 BITS = mih.BITS
@@ -449,6 +450,7 @@ def code_graph(codes2d: Any, radius: int, identity: int | None = None, checks: A
     del owner
     x, y = _token_pairs(main, token_main, token_check, holder, r, check_radius, substrings, threads)
     del main, token_main, token_check, holder
+    trim_heap()  # the search's temporaries, kept in its threads' heaps
     owner = np.arange(n * k, dtype=inv.dtype) // k
     own_s, own_u = _unique_pairs(owner[is_id], inv[is_id], t)
     e = has_id[x] & has_id[y]

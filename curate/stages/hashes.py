@@ -117,17 +117,22 @@ def identity() -> dict:
 
 
 def codes_matrix(column: pa.ChunkedArray | pa.Array, k: int) -> tuple[np.ndarray, np.ndarray]:
-    """A hash column -> (codes uint64 (n, k), valid bool (n,)); rows of null entries are zeros."""
+    """A hash column -> (codes uint64 (n, k), valid bool (n,)); rows of null entries are zeros. When
+    every row holds codes, the codes are a read-only view of the column's buffer (no copy)."""
     if isinstance(column, pa.ChunkedArray):
         arr = column.chunk(0) if column.num_chunks == 1 else column.combine_chunks()
     else:
         arr = column
     n = len(arr)
     valid = np.asarray(arr.is_valid().to_numpy(zero_copy_only=False), dtype=bool) if n else np.zeros(0, bool)
+    fixed = pa.types.is_fixed_size_list(arr.type)
+    if n and valid.all() and fixed and arr.type.list_size == k and pa.types.is_uint64(arr.type.value_type) \
+            and arr.values.null_count == 0:
+        return arr.values.to_numpy()[arr.offset * k : (arr.offset + n) * k].reshape(n, k), valid
     codes = np.zeros((n, k), dtype=np.uint64)
     if n == 0 or not valid.any():
         return codes, valid
-    if pa.types.is_fixed_size_list(arr.type):
+    if fixed:
         if arr.type.list_size != k:
             raise ValueError(f"hash column holds {arr.type.list_size} codes per sample, config expects {k}")
         # Null rows may leave null child slots; fill them first, or numpy goes through float64 and
@@ -172,7 +177,5 @@ def read_codes(table: pa.Table, cfg: HashesConfig) -> Codes | None:
         return None
     s = code_settings(cfg)
     c, valid = codes_matrix(table.column(CODES), similarity.code_count(s))
-    # Each part contiguous: the Hamming search flattens them, and would copy strided views.
-    main, checks = (None if x is None else np.ascontiguousarray(x) for x in similarity.split_codes(c, s))
-    del c
+    main, checks = similarity.split_codes(c, s)
     return Codes(main, checks, valid, similarity.identity_count(s), similarity.views(s))

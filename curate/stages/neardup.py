@@ -99,6 +99,14 @@ CHECKS = (
 LOSSLESS = ("PNG", "BMP", "TIFF", "GIF")
 
 
+def _at(table: pa.Table, name: str, rows: np.ndarray) -> pa.Array:
+    """A column at the given rows (increasing) as one array; at every row: the column itself, no copy."""
+    col = table.column(name)
+    if len(rows) != table.num_rows:
+        col = col.take(pa.array(rows, type=pa.int64()))
+    return col.chunk(0) if col.num_chunks == 1 else col.combine_chunks()
+
+
 def _col(table: pa.Table, name: str, rows: np.ndarray, fill: float) -> np.ndarray:
     if name not in table.column_names:
         return np.full(len(rows), fill, np.float64)
@@ -110,7 +118,7 @@ def _fidelity(table: pa.Table, rows: np.ndarray) -> np.ndarray:
     """101 for a lossless file, the estimated JPEG quality (1-100) for a JPEG, 0 when unknown."""
     q = _col(table, "jpeg_quality", rows, 0.0)
     if "format" in table.column_names:
-        lossless = pc.is_in(table.column("format").take(pa.array(rows, pa.int64())), value_set=pa.array(LOSSLESS))
+        lossless = pc.is_in(_at(table, "format", rows), value_set=pa.array(LOSSLESS))
         q = np.where(np.asarray(pc.fill_null(lossless, False).to_numpy(zero_copy_only=False), dtype=bool), 101.0, q)
     return q
 
@@ -119,7 +127,7 @@ def _flagged(table: pa.Table, rows: np.ndarray) -> np.ndarray:
     """1 for a row with a risk or quality flag before this stage, else 0."""
     if "flags_before" not in table.column_names:
         return np.zeros(len(rows))
-    count = pc.list_value_length(table.column("flags_before").take(pa.array(rows, pa.int64())))
+    count = pc.list_value_length(_at(table, "flags_before", rows))
     return (np.asarray(pc.fill_null(count, 0).to_numpy(zero_copy_only=False)) > 0).astype(np.float64)
 
 
@@ -166,8 +174,7 @@ OUTPUT_SCHEMA = pa.schema([("sample_id", pa.string())] + [(c.name, c.type) for c
 
 def _embeddings(table: pa.Table, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """(float32 (len(rows), d), has) for the given rows of the image_emb column."""
-    col = table.column("image_emb").combine_chunks()
-    sub = col.take(pa.array(rows, type=pa.int64()))
+    sub = _at(table, "image_emb", rows)
     has = np.asarray(sub.is_valid().to_numpy(zero_copy_only=False), dtype=bool)
     if not has.any():
         return np.zeros((len(rows), 0), np.float32), has
@@ -190,8 +197,7 @@ def _sha_keys(table: pa.Table, rows: np.ndarray) -> np.ndarray:
     """Equal numbers for equal sha256 values among the given rows, -1 where unknown."""
     if "sha256" not in table.column_names or not len(rows):
         return np.full(len(rows), -1, np.int64)
-    col = table.column("sha256").take(pa.array(rows, type=pa.int64())).combine_chunks()
-    enc = col.dictionary_encode().indices
+    enc = _at(table, "sha256", rows).dictionary_encode().indices
     return np.asarray(enc.fill_null(-1).to_numpy(zero_copy_only=False), dtype=np.int64)
 
 
@@ -201,7 +207,7 @@ def _rank(table: pa.Table, rows: np.ndarray, keeper: list[str]) -> tuple[np.ndar
     m = rows.shape[0]
     id_rank = np.empty(m, np.int64)
     if m:
-        by_id = pc.sort_indices(table.column("sample_id").take(pa.array(rows, type=pa.int64())))
+        by_id = pc.sort_indices(_at(table, "sample_id", rows))
         id_rank[by_id.to_numpy()] = np.arange(m)
     scores = keeper_scores(table, rows, keeper)
     rank = np.empty(m, np.int64)

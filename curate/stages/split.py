@@ -193,8 +193,9 @@ def _labels(table: pa.Table, members: np.ndarray, codes: Any, radius: int, check
     if codes is not None:
         rows = np.nonzero(members & codes.valid)[0]
         if rows.size:
-            chk = None if codes.checks is None else codes.checks[rows]
-            lab = similarity.sample_components(codes.main[rows], radius, codes.identity, chk, check_radius)
+            pick = (lambda a: a if rows.size == n else a[rows])  # noqa: E731  (no copy when all rows take part)
+            chk = None if codes.checks is None else pick(codes.checks)
+            lab = similarity.sample_components(pick(codes.main), radius, codes.identity, chk, check_radius)
             ei.append(rows)
             ej.append(rows[lab])
     if cfg.group_semantic_cosine > 0 and "image_emb" in table.column_names:
