@@ -176,7 +176,7 @@ def group_keys(sample_ids: pa.Array | pa.ChunkedArray, labels: np.ndarray) -> tu
 
 
 def _labels(table: pa.Table, members: np.ndarray, codes: Any, radius: int, check_radius: int,
-            cfg: SplitConfig) -> np.ndarray:
+            cfg: SplitConfig, threads: int = 1) -> np.ndarray:
     """Group label per row: neardup's groups, joined with this stage's own Hamming components
     (so two samples within `radius` share a side whatever neardup did: a leak is any such pair,
     so here links do chain) and, when asked, with semantic pairs. Rows outside `members` keep
@@ -195,7 +195,8 @@ def _labels(table: pa.Table, members: np.ndarray, codes: Any, radius: int, check
         if rows.size:
             pick = (lambda a: a if rows.size == n else a[rows])  # noqa: E731  (no copy when all rows take part)
             chk = None if codes.checks is None else pick(codes.checks)
-            lab = similarity.sample_components(pick(codes.main), radius, codes.identity, chk, check_radius)
+            lab = similarity.sample_components(pick(codes.main), radius, codes.identity, chk, check_radius,
+                                               threads=threads)
             ei.append(rows)
             ej.append(rows[lab])
     if cfg.group_semantic_cosine > 0 and "image_emb" in table.column_names:
@@ -395,7 +396,10 @@ def run(table: pa.Table, cfg: SplitConfig, ctx: StageContext) -> pa.Table:
     is_eval = np.zeros(n, dtype=bool)
     if cfg.eval_fraction > 0 and n:
         members = np.ones(n, dtype=bool)
-        labels = _labels(table, members, codes, effective_radius(cfg, ctx.config), check_radius(ctx.config), cfg)
+        # The code search's tables run side by side, as neardup's do.
+        threads = max(1, min(int(getattr(ctx, "workers", 0) or os.cpu_count() or 1), 4))
+        labels = _labels(table, members, codes, effective_radius(cfg, ctx.config), check_radius(ctx.config), cfg,
+                         threads)
         group, key_row = group_keys(ids, labels)
         weight = np.bincount(group, minlength=key_row.shape[0])
         strata = None
