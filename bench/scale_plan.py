@@ -19,6 +19,7 @@ from __future__ import annotations
 import argparse
 import hashlib
 import json
+import math
 import resource
 import subprocess
 import sys
@@ -175,6 +176,20 @@ def one(n: int, with_digest: bool = False) -> dict:
     return out
 
 
+def _powers(results: list[dict]) -> dict[str, float]:
+    """Per step, the exponent b of seconds = a * rows**b through the two largest runs (at least 1;
+    1 with a single run)."""
+    steps = [k for k in results[-1]["steps"] if k not in ("setup", "synthesise")]
+    if len(results) < 2:
+        return {k: 1.0 for k in steps}
+    a, b = results[-2], results[-1]
+    out = {}
+    for k in steps:
+        sa, sb = a["steps"][k]["seconds"], b["steps"][k]["seconds"]
+        out[k] = max(1.0, math.log(sb / sa) / math.log(b["rows"] / a["rows"])) if sa > 0 and sb > 0 else 1.0
+    return out
+
+
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--rows", type=int, action="append", help="rows to run (repeatable); default 100k and 1M")
@@ -194,17 +209,7 @@ def main() -> int:
             print(r.stderr[-2000:], file=sys.stderr)
             return r.returncode
         results.append(json.loads(r.stdout.strip().splitlines()[-1]))
-    big = max(results, key=lambda r: r["rows"])
-    fixed_mb = big["steps"]["setup"]["peak_rss_mb"]
-    per_row_s = big["seconds"] / big["rows"]
-    per_row_mb = (big["peak_rss_mb"] - fixed_mb) / big["rows"]
-    extra = {f"{label}_estimate": {"seconds": round(per_row_s * rows),
-                                   "peak_rss_gb": round((fixed_mb + per_row_mb * rows) / 1024, 1)}
-             for label, rows in (("100M", 100_000_000), ("1B", 1_000_000_000))}
-    assumes = ("linear in rows from the largest measured run: every step here is a sort, a hash join or an "
-               "exact Hamming search whose candidate pairs grow with the planted copies; the verdict is a "
-               "columnar pass over the check lists; memory is the setup's fixed part plus "
-               f"{round(per_row_mb * 2**20)} bytes per row (peak less setup, over rows)")
+    extra, assumes = extrapolate(results)
     out = {"runs": results, **extra, "assumes": assumes}
     if a.json:
         print(json.dumps(out))
@@ -215,6 +220,29 @@ def main() -> int:
         for k, v in extra.items():
             print(f"{k}: about {v['seconds']:,} s and {v['peak_rss_gb']} GB on one machine ({assumes})")
     return 0
+
+
+def extrapolate(results: list[dict]) -> tuple[dict, str]:
+    """Estimates for 100M and 1B rows from the runs, and what they assume."""
+    results.sort(key=lambda r: r["rows"])
+    big = results[-1]
+    fixed_mb = big["steps"]["setup"]["peak_rss_mb"]
+    per_row_mb = (big["peak_rss_mb"] - fixed_mb) / big["rows"]
+    powers = _powers(results)
+    extra = {f"{label}_estimate": {"seconds": round(sum(s["seconds"] * (rows / big["rows"]) ** powers[k]
+                                                        for k, s in big["steps"].items() if k in powers)),
+                                   "peak_rss_gb": round((fixed_mb + per_row_mb * rows) / 1024, 1)}
+             for label, rows in (("100M", 100_000_000), ("1B", 1_000_000_000))}
+    square = ("the exact code search in neardup and split grows about as rows squared: its substring buckets "
+              "fill as the corpus grows")
+    if len(results) < 2:
+        grow = f"each step's seconds linear in rows (one run: give two --rows to fit how each grows; {square})"
+    else:
+        grow = ("each step's seconds grow as rows to the power fitted to the two largest runs, at least 1 ("
+                + ", ".join(f"{k} {p:.2f}" for k, p in powers.items()) + f"; {square})")
+    assumes = (f"{grow}; memory is the setup's fixed part plus {round(per_row_mb * 2**20)} bytes per row (peak "
+               "less setup, over rows of the largest run)")
+    return extra, assumes
 
 
 if __name__ == "__main__":

@@ -346,7 +346,8 @@ class CodeGraph(NamedTuple):
     owns, or that is within the radius of one the other owns (an edge), or when a transformed view
     of one is within the radius of a token the other owns (a reach); "within" includes the check
     codes passing. Built without listing sample pairs, so a picture held by many samples costs one
-    token, not a quadratic number of pairs.
+    token, not a quadratic number of pairs. Edges and reaches between tokens that one sample alone
+    holds are left out: they would link that sample only to itself.
     """
 
     tokens: int  # number of distinct tokens
@@ -451,7 +452,7 @@ def code_graph(codes2d: Any, radius: int, identity: int | None = None, checks: A
     x, y = _token_pairs(main, token_main, token_check, holder, r, check_radius, substrings, threads)
     del main, token_main, token_check, holder
     trim_heap()  # the search's temporaries, kept in its threads' heaps
-    owner = np.arange(n * k, dtype=inv.dtype) // k
+    owner = np.arange(n * k, dtype=inv.dtype) // k  # again: not held during the search
     own_s, own_u = _unique_pairs(owner[is_id], inv[is_id], t)
     e = has_id[x] & has_id[y]
     eu, ev = np.minimum(x[e], y[e]), np.maximum(x[e], y[e])

@@ -306,20 +306,20 @@ def _output(table: pa.Table, rows: np.ndarray, groups: similarity.Groups, scores
     how = _how(groups, copy, views)
     reason = why_kept(scores, cfg.keeper, leader[copy], copy)
     emb, codes = signal == similarity.groups.EMBEDDING, signal == similarity.groups.CODES
-    detail = _details(m, lead, sizes[lead], copy, signal, keeper_id, sig, how, reason)
+    # The duplicate check of each seen row; a copy's value and threshold are in its signal's unit.
+    unit = np.where(emb, 0, np.where(codes, 1, -1))
     value, threshold = np.full(m, np.nan), np.full(m, np.nan)
     value[copy] = np.where(emb, 1.0 - dist.astype(np.float64), np.where(codes, dist, np.nan))
     threshold[copy] = np.where(emb, cfg.cosine, np.where(codes, cfg.radius, np.nan))
     failed = np.zeros(m, bool)
     failed[copy] = True
-    record = {"code": "duplicate", "failed": failed, "value": value, "threshold": threshold, "detail": detail,
-              "op": _spread(_pick(["<", ">"], np.where(emb, 0, np.where(codes, 1, -1))), copy, m),
-              "unit": _spread(_pick(["cosine", "bits"], np.where(emb, 0, np.where(codes, 1, -1))), copy, m)}
+    fields = {"failed": failed, "value": value, "threshold": threshold,
+              "detail": _details(lead, sizes[lead], copy, signal, keeper_id, sig, how, reason),
+              "op": _spread(_pick(["<", ">"], unit), copy, m), "unit": _spread(_pick(["cosine", "bits"], unit), copy, m)}
     seen = np.zeros(n, bool)
     seen[rows] = True
-    full = {k: _spread(v, rows, n) if isinstance(v, pa.Array) else _scatter(v, rows, n) for k, v in record.items()
-            if k != "code"}
-    checks = columnar(n, seen, [{"code": "duplicate", **full}])
+    checks = columnar(n, seen, [{"code": "duplicate", **{k: _spread(v, rows, n) if isinstance(v, pa.Array)
+                                                         else _scatter(v, rows, n) for k, v in fields.items()}}])
     cols = {"group_id": gid, "group_size": pa.array(sizes.astype(np.int32)),
             "dup_of": _spread(keeper_id, copy, m), "dup_signal": _spread(sig, copy, m),
             "dup_distance": _spread(pa.array(dist, pa.float32()), copy, m), "dup_transform": _spread(how, copy, m),
@@ -328,10 +328,11 @@ def _output(table: pa.Table, rows: np.ndarray, groups: similarity.Groups, scores
     return pa.Table.from_arrays(arrays + [checks], schema=OUTPUT_SCHEMA)
 
 
-def _details(m: int, lead: np.ndarray, lead_sizes: np.ndarray, copy: np.ndarray, signal: np.ndarray,
+def _details(lead: np.ndarray, lead_sizes: np.ndarray, copy: np.ndarray, signal: np.ndarray,
              keeper_id: pa.Array, sig: pa.Array, how: pa.Array, reason: pa.Array) -> pa.Array:
-    """The duplicate check's detail for each of m rows: the kept ones say how many copies they won
-    over; a copy names its keeper, the signal and the criterion its keeper won on."""
+    """The duplicate check's detail of each seen row (kept ones at ``lead``, copies at ``copy``): a
+    kept sample says how many copies it won over; a copy names its keeper, the signal and the
+    criterion its keeper won on."""
     def at(values: pa.Array, sel: np.ndarray) -> pa.Array:
         return values.take(pa.array(sel, pa.int64()))
 
