@@ -141,8 +141,11 @@ def one(n: int, with_digest: bool = False) -> dict:
     from curate.plan import config_sections
     from curate.stages import REGISTRY, all_checks
 
-    cfg = load_config(None, ["agreement.threshold=0.28", "split.eval_fraction=0.05", "neardup.semantic=false"],
-                      config_sections())
+    # The synthetic codes have the layout of the default views without the mirror (7 identity views,
+    # each with a check code), the layout REFERENCE_DIGESTS were taken with; the default mirror view
+    # adds one transformed view per sample (8 views instead of 7).
+    cfg = load_config(None, ["agreement.threshold=0.28", "split.eval_fraction=0.05", "neardup.semantic=false",
+                             "hashes.transforms=[]"], config_sections())
     actions = decide.Actions(all_checks(), {})
     # Imports and planning (the default embed model's size is read through open_clip, so torch is
     # loaded): a fixed cost, whatever the rows.

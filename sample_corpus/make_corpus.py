@@ -414,8 +414,8 @@ class Corpus:
                      expect="flagged", reason=code, size=img.size, note="personal data in caption")
 
     # -- the shop watermark (a concept probe's flag; quarantined, kept out of train and eval)
-    def watermarked(self) -> None:
-        for folder in ("2024", "2024", "2024", "2025", "2025", "2025", "2025", "archive", "archive", "archive"):
+    def watermarked(self, folders: tuple[str, ...]) -> None:
+        for folder in folders:
             spec, img, r = self.scene(post=workshop.watermark)
             self.add(path=self.next_name(folder), data=jpeg(img, r.choice((84, 86, 88, 90, 92))),
                      sidecar=self.sidecar(self.caption(spec, r), r), expect="quarantined",
@@ -583,8 +583,12 @@ def build() -> list[Sample]:
     c.caption_faults()
     c.personal_data()
     c.formats()
-    c.watermarked()
+    c.watermarked(("2024",) * 3 + ("2025",) * 4 + ("archive",) * 3)
     c.staff_photos()
+    # Twenty more stamped photos, drawn last so that every sample above keeps its bytes: enough
+    # positives to train a probe on some of them (curate probe train needs 10 per class) and
+    # measure it on the rest.
+    c.watermarked(("2024",) * 7 + ("2025",) * 8 + ("archive",) * 5)
     paths = [s.path.lower().rsplit(".", 1)[0] for s in c.samples]
     if len(set(paths)) != len(paths):
         raise RuntimeError("two samples share a stem")

@@ -390,7 +390,8 @@ def test_keeper_order_is_configurable():
 
 def test_explain_names_the_transform_of_a_mirrored_copy(tmp_path, capsys):
     # A public photo (scikit-image's astronaut) and its mirror image: no perceptual hash survives a
-    # flip (Zauner 2010), the mirror views (opt-in) find it, and explain says so for the dropped copy.
+    # flip (Zauner 2010), the mirror views (on by default) find it, and explain says so for the
+    # dropped copy.
     from PIL import Image
 
     from curate import api
@@ -405,8 +406,7 @@ def test_explain_names_the_transform_of_a_mirrored_copy(tmp_path, capsys):
         (root / f"{stem}.txt").write_text("an astronaut in a white suit beside a flag", encoding="utf-8")
     out = tmp_path / "out"
     assert main(["run", "--input", str(root), "--out", str(out), "--quiet", "--set", "run.workers=1",
-                 "--set", "embed.enabled=false", "--set", "agreement.enabled=false",
-                 "--set", 'hashes.transforms=["mirror"]']) == 0
+                 "--set", "embed.enabled=false", "--set", "agreement.enabled=false"]) == 0
     info = api.explain(out, "b.jpg")
     assert info["reasons"] == ["duplicate"] and info["dup_transform"] == "mirror"
     (dup,) = [c for c in info["checks"] if c["code"] == "duplicate"]

@@ -1,6 +1,8 @@
 """Train curate's demo CLIP model on procedurally rendered Kilnworks photos and their captions.
 
     .venv/bin/python tools/train_demo_model.py            # writes curate/models/demo/clip_demo.*
+    .venv/bin/python tools/train_demo_model.py --init curate/models/demo/clip_demo.safetensors
+                                                          # the stamp phase only, from given weights
 
 A small CLIP architecture (an open_clip model config: ViT image tower on 64x64 inputs, causal
 text transformer with open_clip's default BPE tokenizer) trained from scratch with the CLIP
@@ -10,9 +12,18 @@ use random.Random(10_000 + i), calibration scenes random.Random(2_000_000 + i), 
 per step random.Random(5_000_000 + step * batch + j). Same torch version and thread count ->
 same weights.
 
-A share of the training scenes carries the shop watermark (workshop.watermark), and most of their
-captions say so (workshop.WATERMARK_PHRASES), so the model learns one risk-like concept of the demo
-world. Whether a watermark is stamped, and how, comes from random.Random(WATERMARK_SEED + i).
+Two phases. The base phase learns the demo world from clean scenes. The stamp phase then teaches
+one risk-like concept of that world, the shop watermark (workshop.watermark): half of its scenes
+get a stamped twin (same pixels plus the stamp, captioned with the clean twin's caption plus a
+watermark phrase, workshop.WATERMARK_PHRASES), and the two share a batch. In-batch contrast alone
+does not teach the stamp: scenes are told apart by item, glaze, pattern and backdrop long before a
+stamp matters, and a base-phase trial with a quarter of the scenes stamped left a held-out concept
+ROC AUC near 0.5. So each twin pair also adds its own two-by-two CLIP loss (twin_terms), which only
+the stamp can lower. Some stamped twins come alone with captions that do not mention the stamp, as
+real captions mostly do not, so that a stamp does not cost a true caption its agreement. Stamp
+phase scenes are drawn at both the base phase's small sizes and an archive's sizes, and decoded by
+the embed stage's own decoder. Whether a scene gets a twin, and how it is stamped, comes from
+random.Random(WATERMARK_SEED + seed); batches from numpy's default_rng(STAMP_BATCH_SEED).
 
 After training, the agreement threshold is calibrated on held-out scenes: each scene gives one
 true caption and one deliberately mismatched caption (workshop.mismatch: other item, clearly
@@ -49,10 +60,17 @@ CALIB_SEED = 2_000_000
 CAPTION_SEED = 5_000_000
 WATERMARK_SEED = 7_000_000
 CONCEPT_SEED = 3_000_000
-# Share of training scenes stamped with the shop watermark, and share of their captions (per step)
-# that mention it: real captions often leave a watermark unmentioned (our demo choice).
-WATERMARK_SHARE = 0.25
-WATERMARK_MENTION = 0.8
+STAMP_SEED = 11_000_000  # stamp phase scenes: random.Random(STAMP_SEED + i)
+STAMP_BATCH_SEED = 1
+# The stamp phase (our demo choices, measured on held-out scenes; see the module docstring): share
+# of its scenes with a stamped twin; per step, twin pairs, stamped twins alone with an unmentioning
+# caption, and clean scenes; the weight of the twin term; share of captions that name only the item.
+STAMP_SHARE = 0.5
+STAMP_PAIRS, STAMP_ALONE, STAMP_CLEAN = 32, 16, 64
+TWIN_WEIGHT = 2.0
+SHORT_SHARE = 0.15
+SHORT_TEMPLATES = ("product photo of a {item}", "a photo of a {item}", "our {item}", "a {item}",
+                   "a {glaze} {item}", "product photo of a {glaze} {item}")
 # Render sizes (width, height): landscape, portrait and square, 1.5-3x the model input, so the
 # resize to 64 px averages pixels the way it does on full-size photos.
 RENDER_SIZES = ((128, 96), (160, 120), (192, 144), (96, 128), (120, 160), (144, 144))
@@ -96,10 +114,6 @@ def render_one(seed: int) -> tuple[dict, np.ndarray]:
     spec = workshop.random_spec(rng)
     size = rng.choice(RENDER_SIZES)
     img = workshop.render(spec, size, rng)
-    wm = random.Random(WATERMARK_SEED + seed)
-    if wm.random() < WATERMARK_SHARE:
-        img = workshop.watermark(img, wm)
-        spec["watermark"] = True
     if rng.random() < 0.5:  # half go through JPEG, like most photo archives
         buf = io.BytesIO()
         img.save(buf, "JPEG", quality=rng.randint(70, 95))
@@ -128,21 +142,138 @@ def render_concept_photo(seed: int) -> tuple[dict, np.ndarray]:
 
 
 def training_caption(spec: dict, rng: random.Random) -> str:
-    """A caption for a training scene; most watermarked scenes' captions say so."""
-    text = workshop.describe(spec, rng)
-    if spec.get("watermark") and rng.random() < WATERMARK_MENTION:
-        text += ", " + rng.choice(workshop.WATERMARK_PHRASES)
-    return text
+    """A caption for a base phase training scene."""
+    return workshop.describe(spec, rng)
 
 
-def render_many(first_seed: int, n: int, procs: int, fn=render_one) -> tuple[list[dict], np.ndarray]:
+def render_twins(seed: int) -> tuple[dict, np.ndarray, np.ndarray | None]:
+    """Stamp phase scene seed -> (spec, clean pixels, stamped twin's pixels or None), uint8 64x64x3
+    from the embed stage's decoder. Half the scenes are drawn at the base phase's sizes, half at an
+    archive's; both twins come from one drawing and go through JPEG at one quality."""
+    from curate.stages import embed
+
+    rng = random.Random(seed)
+    spec = workshop.random_spec(rng)
+    img = workshop.render(spec, rng.choice(CALIB_SIZES if rng.random() < 0.5 else RENDER_SIZES), rng)
+    wm = random.Random(WATERMARK_SEED + seed)
+    versions = [img]
+    if wm.random() < STAMP_SHARE:
+        versions.append(workshop.watermark(img, wm))
+    quality = rng.randint(70, 95)
+    size = PREPROCESS_CFG["size"]
+    out = []
+    for v in versions:
+        buf = io.BytesIO()
+        v.save(buf, "JPEG", quality=quality)
+        out.append(embed.decode_for_model(buf.getvalue(), _STEPS, (size, size), embed.DRAFT_MARGIN,
+                                          PREPROCESS_CFG["resize_mode"]))
+    return spec, out[0], (out[1] if len(out) > 1 else None)
+
+
+def stamp_caption(spec: dict, rng: random.Random) -> tuple[str, str]:
+    """A stamp phase caption (sometimes only the item, as short alt texts are) and its stamped twin's
+    caption (the same words plus a watermark phrase)."""
+    if rng.random() < SHORT_SHARE:
+        text = rng.choice(SHORT_TEMPLATES).format(item=spec["item"], glaze=spec["glaze"])
+    else:
+        text = workshop.describe(spec, rng)
+    return text, text + ", " + rng.choice(workshop.WATERMARK_PHRASES)
+
+
+def twin_terms(img, txt, pairs: list[int], scale) -> tuple:
+    """The twin term: for each stamped twin at row j (its clean twin at j - 1), the CLIP loss over
+    the two images and their two captions; and the share of pairs whose two images both prefer their
+    own caption. Rows of img and txt are L2-normalised."""
+    import torch
+    import torch.nn.functional as F
+
+    s_idx = torch.tensor(pairs)
+    c_idx = s_idx - 1
+    ic, is_, tc, ts = img[c_idx], img[s_idx], txt[c_idx], txt[s_idx]
+    logits = scale * torch.stack([torch.stack([(ic * tc).sum(-1), (ic * ts).sum(-1)], -1),
+                                  torch.stack([(is_ * tc).sum(-1), (is_ * ts).sum(-1)], -1)], 1)  # [pair, img, txt]
+    labels = torch.tensor([0, 1]).repeat(len(pairs))
+    loss = (F.cross_entropy(logits.reshape(-1, 2), labels)
+            + F.cross_entropy(logits.transpose(1, 2).reshape(-1, 2), labels)) / 2
+    with torch.no_grad():
+        acc = ((logits[:, 0, 0] > logits[:, 0, 1]) & (logits[:, 1, 1] > logits[:, 1, 0])).float().mean().item()
+    return loss, acc
+
+
+def stamp_phase(model, tokenizer, args: argparse.Namespace) -> dict:
+    """Teach the shop watermark (module docstring). Returns the phase's facts for the JSON."""
+    import open_clip
+    import torch
+
+    t0 = time.time()
+    rendered = render_seeds(STAMP_SEED, args.stamp_scenes, args.threads, render_twins)
+    specs = [r[0] for r in rendered]
+    clean = np.stack([r[1] for r in rendered])
+    twins = {i: r[2] for i, r in enumerate(rendered) if r[2] is not None}
+    del rendered
+    t_render = time.time() - t0
+    print(f"stamp phase: rendered {len(specs)} scenes, {len(twins)} stamped twins, in {t_render:.0f} s", flush=True)
+    twin_ids = np.array(sorted(twins))
+    plain_ids = np.array([i for i in range(len(specs)) if i not in twins])
+    opt = torch.optim.AdamW(model.parameters(), lr=args.stamp_lr, betas=(0.9, 0.98), eps=1e-6, weight_decay=0.0)
+    loss_fn = open_clip.ClipLoss()
+    rng = np.random.default_rng(STAMP_BATCH_SEED)
+    warmup = 10
+    model.train()
+    t1 = time.time()
+    for step in range(args.stamp_steps):
+        for g in opt.param_groups:  # short linear warm-up, then cosine decay (common practice)
+            g["lr"] = args.stamp_lr * min(1.0, (step + 1) / warmup) * 0.5 * (1 + math.cos(math.pi * step / args.stamp_steps))
+        paired = rng.choice(twin_ids, STAMP_PAIRS, replace=False)
+        alone = rng.choice(np.setdiff1d(twin_ids, paired), STAMP_ALONE, replace=False)
+        plain = rng.choice(plain_ids, STAMP_CLEAN, replace=False)
+        pix, caps, pairs = [], [], []
+        base = CAPTION_SEED + 1_000_000 + step * 1000
+        for j, i in enumerate(paired):
+            c, s = stamp_caption(specs[i], random.Random(base + j))
+            pix += [clean[i], twins[i]]
+            caps += [c, s]
+            pairs.append(len(pix) - 1)
+        for j, i in enumerate(alone):
+            pix.append(twins[i])
+            caps.append(stamp_caption(specs[i], random.Random(base + 400 + j))[0])
+        for j, i in enumerate(plain):
+            pix.append(clean[i])
+            caps.append(stamp_caption(specs[i], random.Random(base + 600 + j))[0])
+        img = torch.nn.functional.normalize(model.encode_image(to_input(np.stack(pix))), dim=-1)
+        txt = encode_text(model, tokenizer, caps)
+        scale = model.logit_scale.exp()
+        clip_loss = loss_fn(img, txt, scale)
+        twin_loss, acc = twin_terms(img, txt, pairs, scale)
+        loss = clip_loss + TWIN_WEIGHT * twin_loss
+        opt.zero_grad(set_to_none=True)
+        loss.backward()
+        opt.step()
+        with torch.no_grad():
+            model.logit_scale.clamp_(0, math.log(100))
+        if step % 50 == 0 or step == args.stamp_steps - 1:
+            print(f"stamp step {step:4d}  clip {clip_loss.item():.4f}  twin {twin_loss.item():.4f}  "
+                  f"pairs told apart {acc:.2f}  {time.time() - t1:.0f} s", flush=True)
+    return {"scenes": args.stamp_scenes, "stamped_twins": len(twins), "steps": args.stamp_steps, "lr": args.stamp_lr,
+            "per_step": {"twin_pairs": STAMP_PAIRS, "stamped_alone": STAMP_ALONE, "clean": STAMP_CLEAN},
+            "twin_weight": TWIN_WEIGHT, "stamp_share": STAMP_SHARE, "short_caption_share": SHORT_SHARE,
+            "seeds": {"scenes": STAMP_SEED, "watermark": WATERMARK_SEED, "batches": STAMP_BATCH_SEED,
+                      "captions": CAPTION_SEED + 1_000_000},
+            "render_seconds": round(t_render, 1), "train_seconds": round(time.time() - t1, 1),
+            "final_clip_loss": round(float(clip_loss.item()), 4), "final_twin_loss": round(float(twin_loss.item()), 4)}
+
+
+def render_seeds(first_seed: int, n: int, procs: int, fn) -> list:
     seeds = [first_seed + i for i in range(n)]
     if procs <= 1:
         _init_worker()
-        out = [fn(s) for s in seeds]
-    else:
-        with get_context("fork").Pool(procs, initializer=_init_worker) as pool:
-            out = pool.map(fn, seeds, chunksize=16)
+        return [fn(s) for s in seeds]
+    with get_context("fork").Pool(procs, initializer=_init_worker) as pool:
+        return pool.map(fn, seeds, chunksize=16)
+
+
+def render_many(first_seed: int, n: int, procs: int, fn=render_one) -> tuple[list[dict], np.ndarray]:
+    out = render_seeds(first_seed, n, procs, fn)
     return [o[0] for o in out], np.stack([o[1] for o in out])
 
 
@@ -286,37 +417,15 @@ def calibrate_concept(model, tokenizer, n: int, procs: int, agreement_threshold:
     }
 
 
-def main(argv: list[str] | None = None) -> int:
-    ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
-    ap.add_argument("--out", default=str(ROOT / "curate" / "models" / "demo"), help="output folder")
-    ap.add_argument("--scenes", type=int, default=12_000, help="distinct training scenes to render")
-    ap.add_argument("--steps", type=int, default=600, help="optimiser steps")
-    ap.add_argument("--batch", type=int, default=256, help="pairs per step (in-batch negatives)")
-    ap.add_argument("--lr", type=float, default=1e-3, help="peak AdamW learning rate")
-    ap.add_argument("--threads", type=int, default=2, help="torch threads and render processes")
-    ap.add_argument("--calib-scenes", type=int, default=2_000, help="held-out scenes for calibration")
-    ap.add_argument("--concept-scenes", type=int, default=1_000,
-                    help="held-out scenes (half watermarked) for the watermark probe's figures")
-    ap.add_argument("--calibrate-only", action="store_true",
-                    help="keep the weights in --out, redo the calibration and update the JSON")
-    args = ap.parse_args(argv)
-    if args.calibrate_only:
-        return recalibrate(Path(args.out), args)
-
+def base_phase(model, tokenizer, args: argparse.Namespace) -> dict:
+    """Train from scratch on clean scenes. Returns the phase's facts for the JSON."""
     import open_clip
     import torch
-    from safetensors.torch import save_file
 
-    torch.set_num_threads(args.threads)
-    torch.manual_seed(0)
     t0 = time.time()
     specs, pixels = render_many(TRAIN_SEED, args.scenes, args.threads)
     t_render = time.time() - t0
     print(f"rendered {len(specs)} scenes in {t_render:.0f} s", flush=True)
-
-    data = {"model_cfg": MODEL_CFG, "preprocess_cfg": PREPROCESS_CFG}
-    model = clipmod.build_from_config(data)
-    tokenizer = open_clip.SimpleTokenizer(context_length=MODEL_CFG["text_cfg"]["context_length"])
     loss_fn = open_clip.ClipLoss()
     # Weight decay on matrices only (common practice for transformers; open_clip's training does
     # the same); token and position embeddings, gains, biases and the temperature are not decayed.
@@ -360,7 +469,55 @@ def main(argv: list[str] | None = None) -> int:
             print(f"step {step:4d}  loss {loss.item():.4f}  scale {model.logit_scale.exp().item():.1f}  "
                   f"{time.time() - t1:.0f} s", flush=True)
     t_train = time.time() - t1
+    return {"loss": "CLIP contrastive loss (open_clip.ClipLoss), learnable temperature",
+            "scenes": args.scenes, "steps": args.steps, "batch": args.batch, "lr": args.lr,
+            "seeds": {"train": TRAIN_SEED, "captions": CAPTION_SEED, "torch": 0},
+            "render_seconds": round(t_render, 1), "train_seconds": round(t_train, 1),
+            "final_loss": round(float(loss.item()), 4)}
 
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    ap.add_argument("--out", default=str(ROOT / "curate" / "models" / "demo"), help="output folder")
+    ap.add_argument("--scenes", type=int, default=12_000, help="distinct training scenes to render")
+    ap.add_argument("--steps", type=int, default=600, help="optimiser steps")
+    ap.add_argument("--batch", type=int, default=256, help="pairs per step (in-batch negatives)")
+    ap.add_argument("--lr", type=float, default=1e-3, help="peak AdamW learning rate")
+    ap.add_argument("--init", help="start the stamp phase from these weights (safetensors of the demo "
+                                   "architecture) instead of running the base phase")
+    ap.add_argument("--stamp-scenes", type=int, default=6_000, help="stamp phase scenes to render")
+    ap.add_argument("--stamp-steps", type=int, default=2_000, help="stamp phase optimiser steps")
+    ap.add_argument("--stamp-lr", type=float, default=1e-3, help="stamp phase peak AdamW learning rate")
+    ap.add_argument("--threads", type=int, default=2, help="torch threads and render processes")
+    ap.add_argument("--calib-scenes", type=int, default=2_000, help="held-out scenes for calibration")
+    ap.add_argument("--concept-scenes", type=int, default=1_000,
+                    help="held-out scenes (half watermarked) for the watermark probe's figures")
+    ap.add_argument("--calibrate-only", action="store_true",
+                    help="keep the weights in --out, redo the calibration and update the JSON")
+    args = ap.parse_args(argv)
+    if args.calibrate_only:
+        return recalibrate(Path(args.out), args)
+
+    import open_clip
+    import torch
+    from safetensors.torch import save_file
+
+    torch.set_num_threads(args.threads)
+    torch.manual_seed(0)
+    t0 = time.time()
+    model = clipmod.build_from_config({"model_cfg": MODEL_CFG, "preprocess_cfg": PREPROCESS_CFG})
+    tokenizer = open_clip.SimpleTokenizer(context_length=MODEL_CFG["text_cfg"]["context_length"])
+    if args.init:
+        init = Path(args.init)
+        init_sha = hashlib.sha256(init.read_bytes()).hexdigest()
+        clipmod.load_weights(model, str(init), "the demo architecture")
+        model.float()
+        base = {"init_weights": init.name, "init_weights_sha256": init_sha}
+    else:
+        base = base_phase(model, tokenizer, args)
+    stamp = stamp_phase(model, tokenizer, args)
+
+    model.eval()
     cal = calibrate(model, tokenizer, args.calib_scenes, args.threads)
     print(f"calibration: {json.dumps(cal)}", flush=True)
     concept = calibrate_concept(model, tokenizer, args.concept_scenes, args.threads, cal["threshold"])
@@ -382,15 +539,11 @@ def main(argv: list[str] | None = None) -> int:
         "concept_calibration": concept,
         "training": {
             "script": "tools/train_demo_model.py",
-            "loss": "CLIP contrastive loss (open_clip.ClipLoss), learnable temperature",
-            "scenes": args.scenes, "steps": args.steps, "batch": args.batch, "lr": args.lr,
-            "threads": args.threads, "seeds": {"train": TRAIN_SEED, "calibration": CALIB_SEED,
-                                               "captions": CAPTION_SEED, "watermark": WATERMARK_SEED,
-                                               "concept_calibration": CONCEPT_SEED, "torch": 0},
-            "watermark_share": WATERMARK_SHARE, "watermark_mention": WATERMARK_MENTION,
-            "render_seconds": round(t_render, 1), "train_seconds": round(t_train, 1),
+            "base_phase": base,
+            "stamp_phase": stamp,
+            "threads": args.threads,
             "torch": torch.__version__, "open_clip": open_clip.__version__,
-            "weights_dtype": "float16", "final_loss": round(float(loss.item()), 4),
+            "weights_dtype": "float16",
         },
     }
     (out / clipmod.DEMO_CONFIG.name).write_text(json.dumps(meta, indent=2) + "\n", encoding="utf-8")
