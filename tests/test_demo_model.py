@@ -112,13 +112,14 @@ def test_int8_quantisation_stays_within_001_of_fp32(corpus_scores):
 
 
 def test_jpeg_draft_decoding_barely_moves_agreement(corpus_scores):
-    # Draft mode (reduced DCT scale, down to 1/4 for this 64 px model) vs full decode. Bound: 0.02, the
-    # 0.0173 this test measured on the sample corpus rounded up (the 64 px demo model is the most
-    # sensitive case: ViT-B-32 at 224 px moved by 0.0008, curate/models/BACKENDS.md). What matters is
-    # that no pair crosses the demo's thresholds (sample_corpus/curate.toml's and the calibrated one).
+    # Draft mode (reduced DCT scale, down to 1/4 for this 64 px model) vs full decode. Bound: 0.03, the
+    # 0.0226 this test measured on the sample corpus rounded up (the 64 px demo model is the most
+    # sensitive case, more so since it learned the thin strokes of the shop watermark: ViT-B-32 at
+    # 224 px moved by 0.0008, curate/models/BACKENDS.md). What matters is that no pair crosses the
+    # demo's thresholds (sample_corpus/curate.toml's and the calibrated one).
     table, _, cos = corpus_scores
     full = _agreement(table, jpeg_draft=False)
-    assert np.max(np.abs(full - cos)) <= 0.02
+    assert np.max(np.abs(full - cos)) <= 0.03
     with open(ROOT / "sample_corpus" / "curate.toml", "rb") as f:
         demo_threshold = tomllib.load(f)["agreement"]["threshold"]
     for thr in (demo_threshold, clipmod.demo_calibration()["threshold"]):
@@ -127,7 +128,8 @@ def test_jpeg_draft_decoding_barely_moves_agreement(corpus_scores):
 
 @pytest.mark.slow
 def test_training_script_is_deterministic(tmp_path):
-    args = ["--scenes", "48", "--steps", "3", "--batch", "16", "--calib-scenes", "24", "--threads", "1"]
+    args = ["--scenes", "48", "--steps", "3", "--batch", "16", "--stamp-scenes", "48", "--stamp-steps", "3",
+            "--calib-scenes", "24", "--concept-scenes", "24", "--threads", "1"]
     shas = []
     for run in ("a", "b"):
         out = tmp_path / run

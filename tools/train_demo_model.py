@@ -215,6 +215,13 @@ def stamp_phase(model, tokenizer, args: argparse.Namespace) -> dict:
     print(f"stamp phase: rendered {len(specs)} scenes, {len(twins)} stamped twins, in {t_render:.0f} s", flush=True)
     twin_ids = np.array(sorted(twins))
     plain_ids = np.array([i for i in range(len(specs)) if i not in twins])
+    # Per step (fewer when a small run has fewer scenes to draw from).
+    n_pairs = min(STAMP_PAIRS, len(twin_ids) // 3)
+    n_alone = min(STAMP_ALONE, len(twin_ids) - n_pairs)
+    n_clean = min(STAMP_CLEAN, len(plain_ids))
+    if n_pairs < 1:
+        raise SystemExit(f"the stamp phase needs at least 3 stamped twins; {args.stamp_scenes} scenes gave "
+                         f"{len(twin_ids)}: raise --stamp-scenes")
     opt = torch.optim.AdamW(model.parameters(), lr=args.stamp_lr, betas=(0.9, 0.98), eps=1e-6, weight_decay=0.0)
     loss_fn = open_clip.ClipLoss()
     rng = np.random.default_rng(STAMP_BATCH_SEED)
@@ -224,9 +231,9 @@ def stamp_phase(model, tokenizer, args: argparse.Namespace) -> dict:
     for step in range(args.stamp_steps):
         for g in opt.param_groups:  # short linear warm-up, then cosine decay (common practice)
             g["lr"] = args.stamp_lr * min(1.0, (step + 1) / warmup) * 0.5 * (1 + math.cos(math.pi * step / args.stamp_steps))
-        paired = rng.choice(twin_ids, STAMP_PAIRS, replace=False)
-        alone = rng.choice(np.setdiff1d(twin_ids, paired), STAMP_ALONE, replace=False)
-        plain = rng.choice(plain_ids, STAMP_CLEAN, replace=False)
+        paired = rng.choice(twin_ids, n_pairs, replace=False)
+        alone = rng.choice(np.setdiff1d(twin_ids, paired), n_alone, replace=False)
+        plain = rng.choice(plain_ids, n_clean, replace=False)
         pix, caps, pairs = [], [], []
         base = CAPTION_SEED + 1_000_000 + step * 1000
         for j, i in enumerate(paired):
@@ -255,7 +262,7 @@ def stamp_phase(model, tokenizer, args: argparse.Namespace) -> dict:
             print(f"stamp step {step:4d}  clip {clip_loss.item():.4f}  twin {twin_loss.item():.4f}  "
                   f"pairs told apart {acc:.2f}  {time.time() - t1:.0f} s", flush=True)
     return {"scenes": args.stamp_scenes, "stamped_twins": len(twins), "steps": args.stamp_steps, "lr": args.stamp_lr,
-            "per_step": {"twin_pairs": STAMP_PAIRS, "stamped_alone": STAMP_ALONE, "clean": STAMP_CLEAN},
+            "per_step": {"twin_pairs": n_pairs, "stamped_alone": n_alone, "clean": n_clean},
             "twin_weight": TWIN_WEIGHT, "stamp_share": STAMP_SHARE, "short_caption_share": SHORT_SHARE,
             "seeds": {"scenes": STAMP_SEED, "watermark": WATERMARK_SEED, "batches": STAMP_BATCH_SEED,
                       "captions": CAPTION_SEED + 1_000_000},
