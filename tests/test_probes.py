@@ -111,7 +111,8 @@ def test_reported_metrics_match_scikit_learn_metrics(lfw_embeddings):
     prec, rec, _ = precision_recall_curve(y, f.oof)
     ok = (prec[:-1] >= 0.9) & (np.round(rec[:-1] * y.sum()) >= probes.MIN_FLAGGED)
     assert m["target_met"] and m["recall"] == pytest.approx(rec[:-1][ok].max())
-    # Faces are learnable from demo-model features: measured cross-validated ROC AUC 0.999 on this subset (0.977 with the weights before the stamp phase).
+    # Faces are learnable from demo-model features: measured cross-validated ROC AUC 0.999 on this subset
+    # (0.977 with the weights before the stamp phase).
     assert m["roc_auc"] > 0.9
 
 
