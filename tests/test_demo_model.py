@@ -105,7 +105,7 @@ def test_calibrated_threshold_transfers_to_the_corpus(corpus_scores):
 
 
 def test_int8_quantisation_stays_within_001_of_fp32(corpus_scores):
-    # The quantize option is offered only because this holds on the demo corpus (issue target 0.01).
+    # The quantize option is offered only because this holds on the demo corpus (our target: 0.01).
     table, _, cos = corpus_scores
     q = _agreement(table, quantize=True)
     assert np.max(np.abs(q - cos)) <= 0.01

@@ -355,7 +355,7 @@ def test_the_configured_file_size_cap_holds_for_both_sets(sets, tmp_path):
 
 @pytest.mark.slow
 def test_demo_corpus_split_does_not_leak(sample_corpus, tmp_path):
-    # The acceptance check on the Kilnworks demo: its own train and eval shards share no
+    # Check on the Kilnworks demo: its own train and eval shards share no
     # near-duplicate, and a recompressed copy of a training image planted next to eval is found.
     from PIL import Image
 

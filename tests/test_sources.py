@@ -774,7 +774,7 @@ _MEMBER_NAMES = st.lists(
 @settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(members=_MEMBER_NAMES)
 def test_every_tar_image_member_is_one_row_that_reads_its_own_bytes(members):
-    # Property (the rule "one input, one identity"): whatever the names, every image
+    # Property (one input, one identity): whatever the names, every image
     # member gets exactly one row, ids are unique, rows that share a source are all marked,
     # and each row reads back its own member's bytes (Python's tarfile is the reference).
     with tempfile.TemporaryDirectory() as d:

@@ -84,7 +84,8 @@ def _random_groups(rng: np.random.Generator, n: int) -> tuple[list[str], np.ndar
 
 @pytest.mark.parametrize("fraction", [0.05, 0.1, 0.2, 0.5])
 def test_eval_share_within_two_points_for_1000_groups(fraction):
-    # The promise: +-2 percentage points for corpora of >= 1,000 groups. Without the
+    # The split's stated tolerance (its config comment, common practice): +-2 percentage points for
+    # corpora of >= 1,000 groups. Without the
     # balancing step the plain per-group draw misses it often: its share has a binomial standard
     # deviation of about sqrt(f(1-f)/n) = 1.6 points at f = 0.5, n = 1000 before group weights
     # (common practice), so some of these 60 seeds would fail.
