@@ -174,7 +174,8 @@ def read_table(path: str | Path, columns: list[str] | None = None) -> pa.Table:
 
     Raises DamagedWorkFile when the file cannot be parsed or a checksum does not match."""
     try:
-        pf = pq.ParquetFile(path)
+        # Memory-mapped: only the pages of the asked columns are read from disk.
+        pf = pq.ParquetFile(path, memory_map=True)
         meta = pf.schema_arrow.metadata or {}
         names = pf.schema_arrow.names
         cols = names if columns is None else [c for c in columns if c in names]
