@@ -378,3 +378,43 @@ def test_missing_eval_set_is_a_config_error(planted, tmp_path):
         api.run(None, input=str(planted / "train"), out=str(tmp_path / "out"),
                 sets=[f'split.eval_sets=["{tmp_path / "nowhere"}"]', "embed.enabled=false",
                       "agreement.enabled=false"])
+
+
+def test_search_inside_neardup_components_gives_the_full_searchs_groups():
+    # The split's own code search may skip rows that are alone in neardup's code component among
+    # the rows it is given; this must give the partition a search over every row gives, for any
+    # subset of the rows neardup saw. Hard case: chains of copies 6 bits apart (distance grows
+    # along a chain), on the whole table (with neardup's copies: many links) and on the survivors.
+    sys.path.insert(0, str(ROOT / "bench"))
+    import scale_plan
+
+    from curate.layout import hstack
+    from curate.stages import hashes as hashes_mod
+
+    rng = np.random.default_rng(7)
+    table = scale_plan.synth(4000, seed=3)
+    codes = np.asarray(table.column("hash_codes").combine_chunks().flatten().to_numpy()).reshape(-1, 14).copy()
+    for start in range(0, 600, 12):  # 50 chains of 12 samples
+        for k in range(start + 1, start + 12):
+            flips = np.uint64(0)
+            for b in rng.choice(64, 6, replace=False):
+                flips |= np.uint64(1) << np.uint64(b)
+            codes[k] = codes[k - 1] ^ flips
+    table = table.set_column(table.schema.get_field_index("hash_codes"), "hash_codes",
+                             pa.FixedSizeListArray.from_arrays(pa.array(codes.reshape(-1), pa.uint64()), 14))
+    cfg = load_config(None, ["neardup.semantic=false", "hashes.transforms=[]"], config_sections())
+    nd = call_stage("neardup", table, cfg, None)
+    both = hstack([table, nd], "test")
+    copies = np.asarray(nd.column("dup_of").is_valid().to_numpy(zero_copy_only=False))
+    assert copies[:600].sum() > 50  # the chains lost links
+    for rows in (np.arange(table.num_rows), np.flatnonzero(~copies), np.flatnonzero(~copies | (np.arange(4000) % 3 == 0))):
+        sub = both.take(pa.array(rows))
+        read = hashes_mod.read_codes(sub, cfg.section("hashes"))
+        args = (sub, np.ones(sub.num_rows, bool), read, 8, cfg.section("neardup").check_radius, cfg.section("split"))
+        pruned = split_mod._labels(*args, same_radius=True)
+        full = split_mod._labels(*args, same_radius=False)
+        searched = split_mod._searched(sub, np.arange(sub.num_rows), 8, True)
+        assert 0 < len(searched) < sub.num_rows / 2
+        pairs = np.unique(np.stack([pruned, full]), axis=1).shape[1]
+        assert pairs == np.unique(pruned).shape[0] == np.unique(full).shape[0]
+    assert np.unique(full).shape[0] < sub.num_rows  # the last subset still has links to keep together

@@ -311,6 +311,9 @@ class Groups:
     view_kept: np.ndarray  # int16[n]: the leader's view that matched (codes signal), else -1
     view_member: np.ndarray  # int16[n]: the member's view that matched (codes signal), else -1
     rounds: int  # parallel rounds the grouping took (diagnostic)
+    # int64[n]: each sample's component in the graph of code links alone (its smallest member), -1
+    # without codes; every pair within the radius lies inside one component (None: codes not used)
+    code_component: np.ndarray | None = None
 
     def sizes(self) -> np.ndarray:
         """Size of each sample's group."""
@@ -362,7 +365,7 @@ def group(rank: Any, signals: Signals, *, substrings: int | None = None, threads
     pairs: list[tuple[np.ndarray, np.ndarray]] = []
     if signals.same_key is not None:
         graphs.append(same_key_graph(signals.same_key))
-    codes = rows = None
+    codes = rows = code_component = None
     if signals.codes is not None:
         codes = np.asarray(signals.codes, dtype=np.uint64)
         codes = codes[:, None] if codes.ndim == 1 else codes
@@ -373,11 +376,15 @@ def group(rank: Any, signals: Signals, *, substrings: int | None = None, threads
             g = code_graph(pick(codes), valid_radius(signals.radius), signals.identity, chk, signals.check_radius,
                            substrings, threads)
             graphs.append(_rows_graph(g, rows))
+            code_component = np.full(n, -1, np.int64)
+            code_component[rows] = rows[graph_components(rows.shape[0], g)]
     if signals.emb_pairs is not None:
         pi, pj = (np.asarray(x, dtype=np.int64) for x in signals.emb_pairs[:2])
         pairs.append((pi, pj))
     leader, used = greedy_leaders(rank, Links(n, graphs, pairs), max_rounds)
-    return _annotate(leader, used, signals, codes, rows)
+    out = _annotate(leader, used, signals, codes, rows)
+    out.code_component = code_component
+    return out
 
 
 def _annotate(leader: np.ndarray, used: int, signals: Signals, codes: np.ndarray | None,

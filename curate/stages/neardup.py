@@ -42,7 +42,7 @@ from .base import CheckSpec, Column, StageContext, checks_column, stage
 log = logging.getLogger(__name__)
 
 NAME = "neardup"
-VERSION = "3"
+VERSION = "4"
 
 
 @dataclass
@@ -167,6 +167,11 @@ COLUMNS = (
     Column("dup_transform", pa.string(), "how the copy relates to the kept sample: identity, mirror, rot90, "
            "rot180, rot270, ... with +crop when different crops matched (null for embedding links)"),
     Column("keep_reason", pa.string(), "for a copy: the criterion on which the kept copy won"),
+    # Every pair of samples within the radius by perceptual codes lies inside one component, so the
+    # split stage, which must keep such pairs on one side, searches only components of two or more.
+    Column("code_component", pa.int64(), "component of the sample among links by perceptual codes alone at the "
+           "stage's radius (a number shared by linked samples; -1 when none links to it; null without codes)",
+           ledger=False),
 )
 OUTPUT_SCHEMA = pa.schema([("sample_id", pa.string())] + [(c.name, c.type) for c in COLUMNS]
                           + [(checks_column(NAME), CHECKS_TYPE)])
@@ -323,7 +328,8 @@ def _output(table: pa.Table, rows: np.ndarray, groups: similarity.Groups, scores
     cols = {"group_id": gid, "group_size": pa.array(sizes.astype(np.int32)),
             "dup_of": _spread(keeper_id, copy, m), "dup_signal": _spread(sig, copy, m),
             "dup_distance": _spread(pa.array(dist, pa.float32()), copy, m), "dup_transform": _spread(how, copy, m),
-            "keep_reason": _spread(reason, copy, m)}
+            "keep_reason": _spread(reason, copy, m),
+            "code_component": _components(groups.code_component, rows, m, table.column("sample_id"))}
     arrays = [table.column("sample_id")] + [_spread(cols[c.name], rows, n).cast(c.type) for c in COLUMNS]
     return pa.Table.from_arrays(arrays + [checks], schema=OUTPUT_SCHEMA)
 
@@ -360,6 +366,25 @@ def _pick(names: list[str], index: np.ndarray) -> pa.Array:
     """names[index[k]] per entry, null where the index is negative."""
     index = np.asarray(index, np.int64)
     return pa.array(names, pa.string()).take(pa.array(index, mask=index < 0))
+
+
+def _components(comp: np.ndarray | None, rows: np.ndarray, m: int, ids: pa.Array) -> pa.Array:
+    """Code components of the seen rows: -1 for a row no other links to, else the rank by sample_id
+    of the component's smallest sample_id among the linked rows (so the same rows in any order give
+    the same numbers); null without codes."""
+    if comp is None:
+        return pa.nulls(m, pa.int64())
+    out = np.full(m, -1, np.int64)
+    valid = comp >= 0
+    size = np.bincount(comp[valid], minlength=m)
+    linked = np.flatnonzero(valid & (size[np.maximum(comp, 0)] >= 2))
+    if linked.shape[0]:
+        rank = np.empty(linked.shape[0], np.int64)
+        rank[np.asarray(pc.sort_indices(ids.take(pa.array(rows[linked]))))] = np.arange(linked.shape[0])
+        best = np.full(m, np.iinfo(np.int64).max, np.int64)
+        np.minimum.at(best, comp[linked], rank)
+        out[linked] = best[comp[linked]]
+    return pa.array(out, pa.int64(), mask=~valid)
 
 
 def _spread(values: pa.Array, at: np.ndarray, m: int) -> pa.Array:

@@ -176,7 +176,7 @@ def group_keys(sample_ids: pa.Array | pa.ChunkedArray, labels: np.ndarray) -> tu
 
 
 def _labels(table: pa.Table, members: np.ndarray, codes: Any, radius: int, check_radius: int,
-            cfg: SplitConfig, threads: int = 1) -> np.ndarray:
+            cfg: SplitConfig, threads: int = 1, same_radius: bool = False) -> np.ndarray:
     """Group label per row: neardup's groups, joined with this stage's own Hamming components
     (so two samples within `radius` share a side whatever neardup did: a leak is any such pair,
     so here links do chain) and, when asked, with semantic pairs. Rows outside `members` keep
@@ -191,7 +191,7 @@ def _labels(table: pa.Table, members: np.ndarray, codes: Any, radius: int, check
         ei.append(gi)
         ej.append(gj)
     if codes is not None:
-        rows = np.nonzero(members & codes.valid)[0]
+        rows = _searched(table, np.nonzero(members & codes.valid)[0], radius, same_radius)
         if rows.size:
             pick = (lambda a: a if rows.size == n else a[rows])  # noqa: E731  (no copy when all rows take part)
             chk = None if codes.checks is None else pick(codes.checks)
@@ -209,6 +209,26 @@ def _labels(table: pa.Table, members: np.ndarray, codes: Any, radius: int, check
     if not ei:
         return np.arange(n, dtype=np.int64)
     return similarity.components(n, np.concatenate(ei), np.concatenate(ej))
+
+
+def _searched(table: pa.Table, rows: np.ndarray, radius: int, same_radius: bool) -> np.ndarray:
+    """The rows whose codes the split's own search must take: all of ``rows``, or, when neardup
+    linked codes at this same radius and saw every one of them, only those that share neardup's
+    code component with another of them. A pair within the radius is a pair neardup linked too
+    (the rows here are a subset of those it saw), so it lies inside one component; a row alone in
+    its component among these rows links to none of them. Same result, a search over far fewer rows."""
+    if not same_radius or "code_component" not in table.column_names or not rows.size:
+        return rows
+    col = table.column("code_component")
+    if isinstance(col, pa.ChunkedArray):
+        col = col.combine_chunks()
+    comp = col.take(pa.array(rows))
+    if comp.null_count:
+        return rows  # neardup did not see some of them
+    comp = comp.to_numpy(zero_copy_only=False)
+    linked = np.flatnonzero(comp >= 0)  # -1: neardup linked the row to no other
+    _, inv, count = np.unique(comp[linked], return_inverse=True, return_counts=True)
+    return rows[linked[count[inv.ravel()] >= 2]]
 
 
 def _group_links(group_ids: pa.ChunkedArray | pa.Array, members: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -385,7 +405,8 @@ def run_decontaminate(table: pa.Table, cfg: SplitConfig, ctx: StageContext) -> p
 
 
 @stage(name=NAME, version=VERSION, config=SplitConfig, kind="global", phase="assign", alive_only=True,
-       needs=(), wants=("group_id", "hash_codes", "image_emb", "meta"), sections=("neardup", "hashes"),
+       needs=(), wants=("group_id", "code_component", "hash_codes", "image_emb", "meta"),
+       sections=("neardup", "hashes"),
        provides=(Column("split", pa.string(), "train, eval or quarantine; null for dropped samples", shard=True),),
        parallel="inline")
 def run(table: pa.Table, cfg: SplitConfig, ctx: StageContext) -> pa.Table:
@@ -398,8 +419,9 @@ def run(table: pa.Table, cfg: SplitConfig, ctx: StageContext) -> pa.Table:
         members = np.ones(n, dtype=bool)
         # The code search's tables run side by side, as neardup's do.
         threads = max(1, min(int(getattr(ctx, "workers", 0) or os.cpu_count() or 1), 4))
-        labels = _labels(table, members, codes, effective_radius(cfg, ctx.config), check_radius(ctx.config), cfg,
-                         threads)
+        radius = effective_radius(cfg, ctx.config)
+        same = getattr(getattr(ctx.config, "neardup", None), "radius", None) == radius
+        labels = _labels(table, members, codes, radius, check_radius(ctx.config), cfg, threads, same)
         group, key_row = group_keys(ids, labels)
         weight = np.bincount(group, minlength=key_row.shape[0])
         strata = None
