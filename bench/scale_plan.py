@@ -236,8 +236,8 @@ def extrapolate(results: list[dict]) -> tuple[dict, str]:
                                                         for k, s in big["steps"].items() if k in powers)),
                                    "peak_rss_gb": round((fixed_mb + per_row_mb * rows) / 1024, 1)}
              for label, rows in (("100M", 100_000_000), ("1B", 1_000_000_000))}
-    square = ("the exact code search in neardup and split grows about as rows squared: its substring buckets "
-              "fill as the corpus grows")
+    square = ("neardup's exact code search grows faster than rows, up to rows squared: its substring buckets "
+              "fill as the corpus grows; split searches only inside neardup's code components")
     if len(results) < 2:
         grow = f"each step's seconds linear in rows (one run: give two --rows to fit how each grows; {square})"
     else:
