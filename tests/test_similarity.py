@@ -302,6 +302,24 @@ def test_mih_paths_with_tiny_blocks(monkeypatch):
         assert all(np.array_equal(x, y) for x, y in zip(got, ref))
 
 
+def test_threads_split_tables_into_blocks_and_keep_the_exact_pairs_in_one_order(monkeypatch):
+    # Tables cut into many source blocks, searched by 1, 2 or 3 threads (more units than threads,
+    # and a table count that does not divide among them): the same pairs in the same order, and
+    # those of the quadratic scan.
+    monkeypatch.setattr(mih, "_SOURCE_BUCKETS", 7)
+    u = np.unique(_clustered_codes(8, 1500, 5, 6))
+    i, j, d = mih.brute_join(u, None, 7)
+    want = sorted(zip(i.tolist(), j.tolist(), d.tolist()))
+    for m in (3, 4):
+        one = mih.unique_join(u, None, 7, m, threads=1)
+        assert sorted(zip(*(x.tolist() for x in one))) == want
+        for threads in (2, 3):
+            got = mih.unique_join(u, None, 7, m, threads=threads)
+            assert all(np.array_equal(x, y) for x, y in zip(got, one))
+        cross = [mih.unique_join(u[:600], u[600:], 7, m, threads=t) for t in (1, 2)]
+        assert all(np.array_equal(x, y) for x, y in zip(*cross))
+
+
 @pytest.mark.parametrize("substrings", [0, 3, 4])
 def test_tagged_join_leaves_out_exactly_the_pairs_of_one_tag(monkeypatch, substrings):
     # Reference: the quadratic scan without tags, filtered afterwards.

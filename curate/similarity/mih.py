@@ -9,6 +9,7 @@ reported twice. Works on distinct codes; ``hamming`` maps them back to positions
 """
 from __future__ import annotations
 
+import copy
 import itertools
 from typing import Iterator
 
@@ -350,10 +351,24 @@ class _TableJoin:
         self.buf_d = np.empty(pw * pw * step, np.uint8)
         self.buf_m = np.empty(pw * pw * step, np.bool_)
 
-    def run(self) -> Join:
+    def blocks(self) -> list[int]:
+        """Starts of the source blocks ``run`` takes one at a time (fixed, whatever the threads)."""
+        return list(range(0, self.ta.values.shape[0], _SOURCE_BUCKETS))
+
+    def part(self) -> "_TableJoin":
+        """A copy sharing the tables, with its own work buffers and results (one per thread)."""
+        c = copy.copy(self)
+        c.out_i, c.out_j, c.out_d = [], [], []
+        c.buf_a, c.buf_b = np.empty_like(self.buf_a), np.empty_like(self.buf_b)
+        c.buf_x, c.buf_d, c.buf_m = np.empty_like(self.buf_x), np.empty_like(self.buf_d), np.empty_like(self.buf_m)
+        return c
+
+    def run(self, block: int | None = None) -> Join:
+        """Pairs from every source block, or from the one starting at ``block``."""
         ta, tb = self.ta, self.tb
-        for hb, pats in _pattern_groups(self.width, self.rk):
-            for lo in range(0, ta.values.shape[0], _SOURCE_BUCKETS):  # in blocks: temporaries stay small
+        groups = _pattern_groups(self.width, self.rk)
+        for lo in self.blocks() if block is None else [block]:  # in blocks: temporaries stay small
+            for hb, pats in groups:
                 values = ta.values[lo : lo + _SOURCE_BUCKETS]
                 if self.self_join and hb:
                     # Each unordered bucket pair once: from the bucket whose highest differing bit is 0.
@@ -450,21 +465,27 @@ def _join(a: np.ndarray, b: np.ndarray | None, radius: int, m: int, threads: int
     """Exact pairs within radius between distinct codes a and b (b None: within a, i < j, leaving out
     pairs with the same non-negative ``tags``).
 
-    Returns indices into a and b (or a, a) and distances; each pair exactly once. The m substring
-    tables are independent, so ``threads`` > 1 runs them side by side (numpy releases the GIL).
+    Returns indices into a and b (or a, a) and distances; each pair exactly once, in the same order
+    whatever ``threads``. The m substring tables and the source blocks of each are independent, so
+    ``threads`` > 1 builds the tables side by side, then searches all (table, block) units side by
+    side (numpy releases the GIL): no core idles while one large table finishes alone.
     """
     blocks, radii = _blocks(m), _radii(m, radius)
     for (_, w), r in zip(blocks, radii):
         if (w > 62 and r > 0) or _ball_size(w, r) > 2_000_000:
             raise ValueError(f"{m} substrings at radius {radius}: {w}-bit tables searched within {r} bits; use more substrings")
     ks = [k for k in range(m) if radii[k] >= 0]
-    if threads > 1 and len(ks) > 1:
+    if threads > 1:
         from concurrent.futures import ThreadPoolExecutor
 
         with ThreadPoolExecutor(max_workers=threads) as ex:
-            parts = list(ex.map(lambda k: _TableJoin(a, b, k, blocks, radii, radius, tags).run(), ks))
+            tables = list(ex.map(lambda k: _TableJoin(a, b, k, blocks, radii, radius, tags), ks))
+            units = [(t, lo) for t in tables for lo in t.blocks()]
+            parts = list(ex.map(lambda u: u[0].part().run(u[1]), units))
     else:
         parts = [_TableJoin(a, b, k, blocks, radii, radius, tags).run() for k in ks]
+    if not parts:
+        return _empty_join()
     i = np.concatenate([p[0] for p in parts]).astype(np.int64)
     j = np.concatenate([p[1] for p in parts]).astype(np.int64)
     d = np.concatenate([p[2] for p in parts])
