@@ -416,3 +416,20 @@ def test_explain_names_the_transform_of_a_mirrored_copy(tmp_path, capsys):
     assert main(["explain", str(out), "b.jpg"]) == 0
     text = capsys.readouterr().out
     assert "(mirror)" in text and "duplicate" in text
+
+
+@pytest.mark.parametrize("workers", [1, 3, 16])
+def test_the_code_search_runs_on_every_worker_of_the_run(monkeypatch, workers):
+    # A large machine's cores all serve the corpus-wide search: the thread count is the run's
+    # workers, not a fixed cap (the search's results do not depend on it; see test_similarity).
+    seen = []
+    real = neardup.group_samples
+
+    def spy(*args):
+        seen.append(args[-1])
+        return real(*args)
+
+    monkeypatch.setattr(neardup, "group_samples", spy)
+    out = stage_call("neardup", _table(_rule_rows()), workers=workers)
+    assert out.num_rows == len(_rule_rows())
+    assert seen == [workers]

@@ -26,6 +26,7 @@ order. It never raises for one bad sample: it records a failed check.
 from __future__ import annotations
 
 import dataclasses
+import os
 from dataclasses import dataclass, field
 from typing import Any, Callable, Iterable, Literal
 
@@ -108,6 +109,12 @@ class StageContext:
     progress: Any = None  # curate.progress.Progress or None
     work_dir: str | None = None
     extra: dict = field(default_factory=dict)
+
+    @property
+    def search_threads(self) -> int:
+        """Threads for a corpus-wide search: the run's workers (every CPU core when 0 or unset).
+        Each thread adds about 25 MB of work buffers to the search's shared tables."""
+        return max(1, int(self.workers or 0) or os.cpu_count() or 1)
 
 
 ColumnsArg = tuple[Column, ...] | Callable[[ConfigView], Iterable[Column]]

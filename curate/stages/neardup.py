@@ -26,7 +26,6 @@ its own group), so it is stable while the keeper stays.
 from __future__ import annotations
 
 import logging
-import os
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -288,7 +287,7 @@ def run(table: pa.Table, cfg: NeardupConfig, ctx: StageContext) -> pa.Table:
     rows = np.flatnonzero(decoded)
     sha_key, codes, emb, has_emb = _inputs(table, rows, cfg, ctx)
     rank, scores = _rank(table, rows, cfg.keeper)
-    threads = max(1, min(int(getattr(ctx, "workers", 0) or os.cpu_count() or 1), 4))
+    threads = ctx.search_threads
     groups = group_samples(sha_key, codes, emb, has_emb, rank, cfg, threads)
     log.debug("neardup: %d samples grouped in %d parallel rounds", rows.shape[0], groups.rounds)
     kind = ctx.config.section("hashes").kind

@@ -418,7 +418,7 @@ def run(table: pa.Table, cfg: SplitConfig, ctx: StageContext) -> pa.Table:
     if cfg.eval_fraction > 0 and n:
         members = np.ones(n, dtype=bool)
         # The code search's tables run side by side, as neardup's do.
-        threads = max(1, min(int(getattr(ctx, "workers", 0) or os.cpu_count() or 1), 4))
+        threads = ctx.search_threads
         radius = effective_radius(cfg, ctx.config)
         same = getattr(getattr(ctx.config, "neardup", None), "radius", None) == radius
         labels = _labels(table, members, codes, radius, check_radius(ctx.config), cfg, threads, same)
