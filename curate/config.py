@@ -49,7 +49,7 @@ class InputConfig:
 
 @dataclass
 class RunConfig:
-    # Worker processes for per-shard stages; 0 = one per CPU core.
+    # Worker processes for per-shard stages and neardup/split search threads; 0 = one per CPU core.
     workers: int = 0
     # local | ray (ray needs the `ray` extra installed).
     engine: Literal["local", "ray"] = "local"

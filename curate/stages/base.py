@@ -113,7 +113,7 @@ class StageContext:
     @property
     def search_threads(self) -> int:
         """Threads for a corpus-wide search: the run's workers (every CPU core when 0 or unset).
-        Each thread adds about 25 MB of work buffers to the search's shared tables."""
+        Each thread adds a few tens of MB of work buffers beside the search's shared tables."""
         return max(1, int(self.workers or 0) or os.cpu_count() or 1)
 
 
