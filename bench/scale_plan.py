@@ -20,6 +20,7 @@ import argparse
 import hashlib
 import json
 import math
+import os
 import resource
 import subprocess
 import sys
@@ -131,8 +132,9 @@ def digest(table: pa.Table, v) -> str:
     return h.hexdigest()
 
 
-def one(n: int, with_digest: bool = False) -> dict:
-    """Run the corpus-wide steps on n synthetic samples in this process."""
+def one(n: int, with_digest: bool = False, workers: int = 2) -> dict:
+    """Run the corpus-wide steps on n synthetic samples in this process (``workers``: the search
+    threads of neardup and split, as the run's `run.workers`)."""
     sys.path.insert(0, str(ROOT))
     from curate import decide
     from curate.config import load_config
@@ -160,7 +162,7 @@ def one(n: int, with_digest: bool = False) -> dict:
         if REGISTRY[name].alive_only:
             rows = np.flatnonzero(decide.alive(checks, actions, n))
         flags = [[]] * len(rows) if rows is not None and name == "neardup" else None
-        out = call_stage(name, table, cfg, rows, flags, workers=2)
+        out = call_stage(name, table, cfg, rows, flags, workers=workers)
         table = hstack([table, out], name)
         checks.append(table.column(f"{name}.checks"))
         steps[name] = {"seconds": round(time.perf_counter() - t, 2), "peak_rss_mb": round(_rss_mb())}
@@ -171,7 +173,7 @@ def one(n: int, with_digest: bool = False) -> dict:
     steps["verdict"] = {"seconds": round(time.perf_counter() - t, 2), "peak_rss_mb": round(_rss_mb())}
     kept = int(decide.alive(checks, actions, n).sum())
     total = round(sum(s["seconds"] for k, s in steps.items() if k not in ("setup", "synthesise")), 2)
-    out = {"rows": n, "steps": steps, "seconds": total, "peak_rss_mb": round(_rss_mb()), "kept": kept}
+    out = {"rows": n, "workers": workers, "steps": steps, "seconds": total, "peak_rss_mb": round(_rss_mb()), "kept": kept}
     if with_digest:
         out["digest"] = digest(table, v)
         if n in REFERENCE_DIGESTS:
@@ -199,14 +201,19 @@ def main() -> int:
     ap.add_argument("--json", action="store_true", help="print one JSON line")
     ap.add_argument("--digest", action="store_true", help="add a sha256 of every output and the verdict per run, "
                     "and whether it equals the recorded reference for that many rows")
+    ap.add_argument("--workers", type=int, default=0, help="search threads of neardup and split (run.workers); "
+                    "0 = every CPU core")
     ap.add_argument("--child", type=int, help=argparse.SUPPRESS)
     a = ap.parse_args()
+    if a.workers < 0:
+        ap.error(f"--workers must be >= 0, got {a.workers}")
+    workers = a.workers or os.cpu_count() or 1
     if a.child:
-        print(json.dumps(one(a.child, a.digest)))
+        print(json.dumps(one(a.child, a.digest, workers)))
         return 0
     results = []
     for n in a.rows or [100_000, 1_000_000]:
-        r = subprocess.run([sys.executable, __file__, "--child", str(n)] + (["--digest"] if a.digest else []),
+        r = subprocess.run([sys.executable, __file__, "--child", str(n), "--workers", str(workers)] + (["--digest"] if a.digest else []),
                            capture_output=True, text=True)
         if r.returncode != 0:
             print(r.stderr[-2000:], file=sys.stderr)
@@ -218,7 +225,7 @@ def main() -> int:
         print(json.dumps(out))
     else:
         for r in results:
-            print(f"{r['rows']:>12,} rows: {r['seconds']:8.2f} s, peak RSS {r['peak_rss_mb']:,} MB  "
+            print(f"{r['rows']:>12,} rows, {r['workers']} workers: {r['seconds']:8.2f} s, peak RSS {r['peak_rss_mb']:,} MB  "
                   + "  ".join(f"{k} {v['seconds']}s" for k, v in r["steps"].items()))
         for k, v in extra.items():
             print(f"{k}: about {v['seconds']:,} s and {v['peak_rss_gb']} GB on one machine ({assumes})")
@@ -243,7 +250,8 @@ def extrapolate(results: list[dict]) -> tuple[dict, str]:
     else:
         grow = ("each step's seconds grow as rows to the power fitted to the two largest runs, at least 1 ("
                 + ", ".join(f"{k} {p:.2f}" for k, p in powers.items()) + f"; {square})")
-    assumes = (f"{grow}; memory is the setup's fixed part plus {round(per_row_mb * 2**20)} bytes per row (peak "
+    threads = f"; on one machine with the runs' {big.get('workers', 2)} search threads"
+    assumes = (f"{grow}{threads}; memory is the setup's fixed part plus {round(per_row_mb * 2**20)} bytes per row (peak "
                "less setup, over rows of the largest run)")
     return extra, assumes
 
